@@ -1,0 +1,1 @@
+"""The checkpoint's own metadata: query id, logs, sources, operators, stores, versions."""

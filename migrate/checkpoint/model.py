@@ -1,0 +1,225 @@
+"""The checkpoint model: what a checkpoint directory holds, read once, without touching state rows.
+
+``load_checkpoint(location)`` lists each directory once and reads the small metadata files:
+
+* ``metadata``: the query id;
+* ``offsets/<b>`` and ``commits/<b>``: the logs; the latest consistent batch is the newest batch
+  with both entries, and its state version is ``batch + 1``; newer offsets entries without a
+  commit are reported as a trailing uncommitted batch;
+* ``sources/``: kept verbatim;
+* ``state/<operator>/``: operator metadata under ``_metadata``, partitions ``0..n-1``, the
+  default store directly in each partition directory and named stores (join stores) in
+  subdirectories, schema files under ``<partition>/_metadata`` and ``_stateSchema``.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from typing import Any
+
+from ..errors import CorruptInput, Unsupported
+from ..providers import provider_for
+from ..providers.base import Provider, StoreDir
+from ..storage import Entry, Location
+from .logs import (
+    PARTITIONS_CONF,
+    PROVIDER_CONF,
+    CommitEntry,
+    OffsetEntry,
+    log_batch_ids,
+    parse_commit,
+    parse_offsets,
+    parse_query_metadata,
+)
+
+HDFS_CLASS = "org.apache.spark.sql.execution.streaming.state.HDFSBackedStateStoreProvider"
+_NOT_STORES = {"_metadata", "SSTs", "logs", "_stateSchema"}
+INCOMPLETE_MARKER = "_stateshift_incomplete"
+
+
+@dataclass(frozen=True)
+class StorePartition:
+    """One store of one partition of one operator, with its directory listing."""
+
+    dir: StoreDir
+    listing: dict[str, Entry] = field(compare=False, repr=False)
+
+    @property
+    def operator_id(self) -> int:
+        return self.dir.operator_id
+
+    @property
+    def store_name(self) -> str:
+        return self.dir.store_name
+
+    @property
+    def partition(self) -> int:
+        return self.dir.partition
+
+    @property
+    def label(self) -> str:
+        return f"op {self.operator_id} / {self.store_name} / part {self.partition}"
+
+
+@dataclass(frozen=True)
+class StoreInfo:
+    name: str
+    num_cols_prefix_key: int = 0
+    num_partitions: int | None = None
+
+
+@dataclass(frozen=True)
+class Operator:
+    operator_id: int
+    name: str | None
+    stores: tuple[StoreInfo, ...]
+    partitions: tuple[StorePartition, ...]
+    metadata: dict[str, Any] | None = field(default=None, compare=False)
+
+    def store_info(self, name: str) -> StoreInfo:
+        for s in self.stores:
+            if s.name == name:
+                return s
+        return StoreInfo(name)
+
+
+@dataclass(frozen=True)
+class Checkpoint:
+    location: Location
+    query_id: str
+    offsets: dict[int, OffsetEntry] = field(compare=False)
+    commits: dict[int, CommitEntry] = field(compare=False)
+    latest_batch: int
+    uncommitted: tuple[int, ...]
+    conf: dict[str, str] = field(compare=False)
+    provider_class: str
+    operators: tuple[Operator, ...]
+    incomplete_marker: bool = False
+
+    @property
+    def state_version(self) -> int:
+        return self.latest_batch + 1
+
+    @property
+    def provider(self) -> Provider:
+        return provider_for(self.provider_class, self.location.describe(f"offsets/{self.latest_batch}"))
+
+    @property
+    def num_partitions(self) -> int | None:
+        value = self.conf.get(PARTITIONS_CONF)
+        return int(value) if value and value.isdigit() else None
+
+    def store_partitions(self) -> list[StorePartition]:
+        return [sp for op in self.operators for sp in op.partitions]
+
+
+def _read_log(loc: Location, name: str, listing: dict[str, Entry], parse: Any) -> dict[int, Any]:
+    out = {}
+    for b in log_batch_ids(list(listing)):
+        rel = f"{name}/{b}"
+        out[b] = parse(loc.read_text(rel), b, loc.describe(rel))
+    return out
+
+
+def _operator_metadata(loc: Location, rel: str, listing: dict[str, Entry]) -> dict[str, Any] | None:
+    if "metadata" not in listing:
+        return None
+    where = loc.describe(f"{rel}/metadata")
+    text = loc.read_text(f"{rel}/metadata")
+    lines = text.split("\n", 1)
+    if len(lines) < 2 or not lines[0].startswith("v"):
+        raise CorruptInput("operator metadata does not start with a version line", where)
+    try:
+        value = json.loads(lines[1])
+    except json.JSONDecodeError as exc:
+        raise CorruptInput(f"operator metadata is not valid JSON ({exc.msg})", where) from exc
+    if not isinstance(value, dict):
+        raise CorruptInput("operator metadata is not a JSON object", where)
+    value["_version"] = lines[0].strip()
+    return value
+
+
+def _load_operator(loc: Location, op_id: int) -> Operator:
+    rel = f"state/{op_id}"
+    listing = loc.list_dir(rel)
+    meta_listing = loc.list_dir(f"{rel}/_metadata") if "_metadata" in listing else {}
+    meta = _operator_metadata(loc, f"{rel}/_metadata", meta_listing)
+    stores: list[StoreInfo] = []
+    name = None
+    if meta is not None:
+        name = (meta.get("operatorInfo") or {}).get("operatorName")
+        for s in meta.get("stateStoreInfo") or []:
+            stores.append(
+                StoreInfo(str(s.get("storeName", "default")), int(s.get("numColsPrefixKey", 0) or 0), s.get("numPartitions"))
+            )
+    partitions = sorted(int(n) for n, e in listing.items() if n.isdigit() and e.is_dir)
+    expected = next((s.num_partitions for s in stores if s.num_partitions), None)
+    if expected is not None:
+        missing = sorted(set(range(int(expected))) - set(partitions))
+        if missing:
+            raise CorruptInput(
+                f"operator metadata names {expected} partitions but partition directory {missing[0]} is missing",
+                loc.describe(f"{rel}/{missing[0]}"),
+            )
+    parts: list[StorePartition] = []
+    for p in partitions:
+        prel = f"{rel}/{p}"
+        plisting = loc.list_dir(prel)
+        named = sorted(n for n, e in plisting.items() if e.is_dir and n not in _NOT_STORES and not n.startswith("."))
+        store_names = [s.name for s in stores] if stores else (named or ["default"])
+        for sname in store_names:
+            if sname == "default":
+                parts.append(StorePartition(StoreDir(loc, prel, op_id, p, "default"), plisting))
+            else:
+                srel = f"{prel}/{sname}"
+                slisting = loc.list_dir(srel) if sname in named else {}
+                parts.append(StorePartition(StoreDir(loc, srel, op_id, p, sname), slisting))
+    if not stores:
+        seen = sorted({sp.store_name for sp in parts})
+        stores = [StoreInfo(s) for s in seen]
+    return Operator(op_id, name, tuple(stores), tuple(parts), meta)
+
+
+def load_checkpoint(loc: Location) -> Checkpoint:
+    """Read the model of the checkpoint at ``loc`` (never writes)."""
+    root = loc.list_dir("")
+    if not root:
+        if not loc.exists(""):
+            raise CorruptInput("checkpoint directory does not exist", loc.describe())
+        raise CorruptInput("directory is empty; not a streaming checkpoint", loc.describe())
+    if "offsets" not in root or "metadata" not in root:
+        missing = " and ".join(n for n in ("metadata", "offsets") if n not in root)
+        raise CorruptInput(f"not a streaming checkpoint: no {missing} here", loc.describe())
+    query = parse_query_metadata(loc.read_text("metadata"), loc.describe("metadata"))
+    offsets = _read_log(loc, "offsets", loc.list_dir("offsets"), parse_offsets)
+    commits = _read_log(loc, "commits", loc.list_dir("commits"), parse_commit) if "commits" in root else {}
+    orphan = sorted(set(commits) - set(offsets))
+    if orphan:
+        raise CorruptInput(f"commit entry for batch {orphan[0]} has no offsets entry", loc.describe(f"commits/{orphan[0]}"))
+    consistent = sorted(set(offsets) & set(commits))
+    if not consistent:
+        where = loc.describe("commits")
+        raise Unsupported("no committed micro-batch yet: there is no consistent state to migrate", where)
+    latest = consistent[-1]
+    uncommitted = tuple(b for b in sorted(offsets) if b > latest)
+    conf = offsets[latest].conf
+    provider_class = conf.get(PROVIDER_CONF, HDFS_CLASS)
+    provider_for(provider_class, loc.describe(f"offsets/{latest}"))  # unknown class -> Unsupported
+    operators: list[Operator] = []
+    if "state" in root:
+        state = loc.list_dir("state")
+        for op_id in sorted(int(n) for n, e in state.items() if n.isdigit() and e.is_dir):
+            operators.append(_load_operator(loc, op_id))
+    return Checkpoint(
+        location=loc,
+        query_id=str(query["id"]),
+        offsets=offsets,
+        commits=commits,
+        latest_batch=latest,
+        uncommitted=uncommitted,
+        conf=conf,
+        provider_class=provider_class,
+        operators=tuple(operators),
+        incomplete_marker=INCOMPLETE_MARKER in root,
+    )

@@ -1,0 +1,1 @@
+"""One module per command: each builds a plan from library calls and runs it (or prints it)."""

@@ -1,0 +1,117 @@
+"""The one small interface every state-store provider layout implements.
+
+A provider knows how one store partition directory is laid out on disk (which files make up a
+version, how they are framed) and nothing about what to migrate. The unit it reads and writes is
+a ``pyarrow.RecordBatch`` with two non-null binary columns, ``key`` and ``value``: the engine's
+canonical row bytes, exactly as the engine holds them in its in-memory map (for RocksDB: with the
+one-byte encoding-version prefix removed; see ``rocksdb.py``).
+
+* ``versions(listing)``: which versions the directory listing shows files for.
+* ``read(store, version, ctx)``: the rows of one version of one store partition, as batches.
+  Must raise :class:`~migrate.errors.CorruptInput` naming the file for anything inconsistent.
+  Never writes to the source location.
+* ``write(store, version, batches, ctx)``: write that version from batches; returns the relative
+  paths it created (so the caller can publish / clean up / verify).
+"""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from collections.abc import Iterable, Iterator
+from dataclasses import dataclass, field
+from typing import Any
+
+import pyarrow as pa
+
+from ..storage import Entry, Location
+
+ROW_SCHEMA = pa.schema([pa.field("key", pa.binary(), nullable=False), pa.field("value", pa.binary(), nullable=False)])
+BATCH_ROWS = 65536
+
+
+@dataclass(frozen=True)
+class StoreDir:
+    """One store partition directory: ``state/<operator>/<partition>[/<store name>]``."""
+
+    location: Location
+    rel: str  # relative to location root, e.g. "state/0/3" or "state/0/3/left-keyToNumValues"
+    operator_id: int
+    partition: int
+    store_name: str = "default"
+
+    def describe(self, name: str = "") -> str:
+        return self.location.describe(f"{self.rel}/{name}" if name else self.rel)
+
+
+@dataclass(frozen=True)
+class ReadContext:
+    """What a reader needs beyond the files: the conf pinned in the offsets log."""
+
+    conf: dict[str, str] = field(default_factory=dict)
+    num_cols_prefix_key: int = 0
+    listing: dict[str, Entry] | None = None  # the store dir listing if the caller has it
+
+    @property
+    def codec(self) -> str:
+        return self.conf.get("spark.sql.streaming.stateStore.compression.codec", "lz4")
+
+
+@dataclass(frozen=True)
+class WriteContext:
+    """What a writer needs: the target conf (codec, RocksDB format version) and the engine."""
+
+    conf: dict[str, str] = field(default_factory=dict)
+    num_cols_prefix_key: int = 0
+    write_crc: bool = True
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def codec(self) -> str:
+        return self.conf.get("spark.sql.streaming.stateStore.compression.codec", "lz4")
+
+
+@dataclass(frozen=True)
+class WrittenFile:
+    rel: str
+    size: int
+
+
+class Provider(ABC):
+    """One state-store provider's on-disk layout."""
+
+    #: short name used on the command line (``--to hdfs``)
+    name: str = ""
+    #: fully qualified engine class names that mean this layout
+    class_names: tuple[str, ...] = ()
+
+    @abstractmethod
+    def versions(self, listing: dict[str, Entry]) -> list[int]:
+        """Versions that have a complete file of their own in this listing (sorted)."""
+
+    @abstractmethod
+    def read(self, store: StoreDir, version: int, ctx: ReadContext) -> Iterator[pa.RecordBatch]:
+        """Rows of ``version``: batches of :data:`ROW_SCHEMA`."""
+
+    @abstractmethod
+    def write(
+        self, store: StoreDir, version: int, batches: Iterable[pa.RecordBatch], ctx: WriteContext
+    ) -> list[WrittenFile]:
+        """Write ``version`` from batches; return the files created (relative to the location)."""
+
+    def source_files(self, store: StoreDir, version: int, ctx: ReadContext) -> list[WrittenFile]:
+        """The files that ``read`` would read for ``version`` (for the dry-run plan)."""
+        return []
+
+
+def batches_from_pairs(pairs: Iterable[tuple[bytes, bytes]], rows: int = BATCH_ROWS) -> Iterator[pa.RecordBatch]:
+    """Group (key, value) pairs into batches of :data:`ROW_SCHEMA`."""
+    keys: list[bytes] = []
+    values: list[bytes] = []
+    for k, v in pairs:
+        keys.append(k)
+        values.append(v)
+        if len(keys) >= rows:
+            yield pa.RecordBatch.from_arrays([pa.array(keys, pa.binary()), pa.array(values, pa.binary())], schema=ROW_SCHEMA)
+            keys, values = [], []
+    if keys:
+        yield pa.RecordBatch.from_arrays([pa.array(keys, pa.binary()), pa.array(values, pa.binary())], schema=ROW_SCHEMA)
