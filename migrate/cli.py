@@ -17,18 +17,14 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import sys
 from typing import Any
 
 from tqdm import tqdm
 
 from . import __version__
-from .errors import StateshiftError, UsageError, VerificationFailed
-from .providers import PROVIDER_NAMES
+from .errors import StateshiftError
 from .storage import mask_text, open_location, parse_storage_options, secret_values
-
-EXIT_DIFFERENT = VerificationFailed.exit_code
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -47,22 +43,8 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--version", action="version", version=f"stateshift {__version__}")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
-    c = sub.add_parser("convert", parents=[common], help="rebuild a checkpoint on another state-store provider")
-    c.add_argument("source", metavar="SRC", help="checkpoint to read (local path or fsspec URL); never written")
-    c.add_argument("target", metavar="DST", help="where to build the converted checkpoint")
-    c.add_argument("--to", required=True, metavar="PROVIDER", help=f"target provider: {' | '.join(PROVIDER_NAMES)} | <provider class>")
-    c.add_argument("--dry-run", action="store_true", help="print the plan as a diff and write nothing")
-    c.add_argument("--overwrite", action="store_true", help="replace a non-empty DST")
-    c.add_argument("--jobs", "-j", type=int, default=os.cpu_count() or 1, help="store partitions in parallel (default: cores)")
-    c.add_argument("--target-storage-option", action="append", default=[], metavar="KEY=VALUE", help="filesystem option for DST only")
-
-    i = sub.add_parser("inspect", parents=[common], help="show what a checkpoint holds")
-    i.add_argument("source", metavar="SRC")
-    i.add_argument("--rows", action="store_true", help="also rebuild every store partition and count rows (reads all state)")
-
-    v = sub.add_parser("verify", parents=[common], help="compare the state of two checkpoints")
-    v.add_argument("a", metavar="A")
-    v.add_argument("b", metavar="B")
+    for module in _command_modules():
+        module.add_parser(sub, common)
     return p
 
 
@@ -96,42 +78,42 @@ def _emit(args: argparse.Namespace, payload: dict[str, Any], text: str) -> None:
         print(text)
 
 
+def _command_modules() -> list[Any]:
+    """Each command module has ``add_parser(subparsers, common)`` and ``run(args, ctx) -> int``."""
+    from .commands import convert, inspect, verify
+
+    modules = [convert, inspect, verify]
+    try:  # the archive commands (export / import) register themselves when present
+        from .commands import export, import_archive
+
+        modules += [export, import_archive]
+    except ImportError:
+        pass
+    return modules
+
+
+class RunContext:
+    """What a command's ``run`` gets besides its arguments: storage options, progress, output."""
+
+    def __init__(self, args: argparse.Namespace) -> None:
+        self.args = args
+        self.options = parse_storage_options(args.storage_option)
+        self.progress = _Progress(enabled=not args.quiet and not args.json and sys.stderr.isatty())
+
+    def open(self, url: str, readonly: bool = True, extra: list[str] | None = None) -> Any:
+        options = {**self.options, **parse_storage_options(extra or [])}
+        return open_location(url, options, readonly=readonly)
+
+    def emit(self, payload: dict[str, Any], text: str) -> None:
+        _emit(self.args, payload, text)
+
+
 def _run(args: argparse.Namespace) -> int:
-    options = parse_storage_options(args.storage_option)
-    progress = _Progress(enabled=not args.quiet and not args.json and sys.stderr.isatty())
+    ctx = RunContext(args)
     try:
-        if args.command == "convert":
-            from .commands.convert import convert
-            from .commands.render import render_convert
-
-            if args.jobs < 1:
-                raise UsageError("--jobs must be at least 1")
-            target_options = {**options, **parse_storage_options(args.target_storage_option)}
-            src = open_location(args.source, options, readonly=True)
-            dst = open_location(args.target, target_options, readonly=args.dry_run)
-            report = convert(
-                src, dst, args.to, dry_run=args.dry_run, overwrite=args.overwrite, jobs=args.jobs,
-                progress=progress.step, on_plan=progress.start,
-            )
-            progress.close()
-            _emit(args, report.to_json(), render_convert(report))
-            return 0
-        if args.command == "inspect":
-            from .commands.inspect import inspect, render
-
-            info = inspect(open_location(args.source, options), rows=args.rows)
-            _emit(args, info, render(info))
-            return 0
-        if args.command == "verify":
-            from .commands.verify import render, verify
-
-            result = verify(open_location(args.a, options), open_location(args.b, options), progress=progress.step)
-            progress.close()
-            _emit(args, result, render(result))
-            return 0 if result["identical"] else EXIT_DIFFERENT
+        return int(args.run(args, ctx))
     finally:
-        progress.close()
-    raise UsageError(f"unknown command {args.command}")
+        ctx.progress.close()
 
 
 def main(argv: list[str] | None = None) -> int:

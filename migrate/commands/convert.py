@@ -14,6 +14,8 @@ With ``--dry-run`` steps 2-5 are replaced by printing the plan; nothing is writt
 
 from __future__ import annotations
 
+import argparse
+import os
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
@@ -109,7 +111,7 @@ def convert(
     ckpt = load_checkpoint(src)
     target_class = class_name_for(to)
     target = provider_for(target_class)
-    source = ckpt.provider
+    ckpt.provider  # an unknown source provider class raises Unsupported here
     report = ConvertReport(
         source=src.display,
         target=dst.display,
@@ -182,3 +184,34 @@ def publish(
             report.files.append(_copy(src, dst, ".metadata.crc"))
     else:
         report.files += _write_with_crc(dst, "metadata", query_metadata, True)
+
+
+def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
+    from ..providers import PROVIDER_NAMES
+
+    c = sub.add_parser("convert", parents=[common], help="rebuild a checkpoint on another state-store provider")
+    c.add_argument("source", metavar="SRC", help="checkpoint to read (local path or fsspec URL); never written")
+    c.add_argument("target", metavar="DST", help="where to build the converted checkpoint")
+    c.add_argument("--to", required=True, metavar="PROVIDER", help=f"target provider: {' | '.join(PROVIDER_NAMES)} | <provider class>")
+    c.add_argument("--dry-run", action="store_true", help="print the plan as a diff and write nothing")
+    c.add_argument("--overwrite", action="store_true", help="replace a non-empty DST")
+    c.add_argument("--jobs", "-j", type=int, default=os.cpu_count() or 1, help="store partitions in parallel (default: cores)")
+    c.add_argument("--target-storage-option", action="append", default=[], metavar="KEY=VALUE", help="filesystem option for DST only")
+    c.set_defaults(run=run)
+
+
+def run(args: argparse.Namespace, ctx: Any) -> int:
+    from ..errors import UsageError
+    from .render import render_convert
+
+    if args.jobs < 1:
+        raise UsageError("--jobs must be at least 1")
+    src = ctx.open(args.source, readonly=True)
+    dst = ctx.open(args.target, readonly=args.dry_run, extra=args.target_storage_option)
+    report = convert(
+        src, dst, args.to, dry_run=args.dry_run, overwrite=args.overwrite, jobs=args.jobs,
+        progress=ctx.progress.step, on_plan=ctx.progress.start,
+    )
+    ctx.progress.close()
+    ctx.emit(report.to_json(), render_convert(report))
+    return 0

@@ -6,6 +6,7 @@ reports its row count and digest (reads all state; still writes nothing).
 
 from __future__ import annotations
 
+import argparse
 from typing import Any
 
 from ..checkpoint.logs import CODEC_CONF, PARTITIONS_CONF
@@ -120,3 +121,16 @@ def render(info: dict[str, Any]) -> str:
                     row += f"  (files for uncommitted versions {p['newer_than_commit']})"
                 lines.append(row)
     return "\n".join(lines)
+
+
+def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
+    i = sub.add_parser("inspect", parents=[common], help="show what a checkpoint holds")
+    i.add_argument("source", metavar="SRC")
+    i.add_argument("--rows", action="store_true", help="also rebuild every store partition and count rows (reads all state)")
+    i.set_defaults(run=run)
+
+
+def run(args: argparse.Namespace, ctx: Any) -> int:
+    info = inspect(ctx.open(args.source), rows=args.rows)
+    ctx.emit(info, render(info))
+    return 0

@@ -6,6 +6,7 @@ and digest of the canonical key and value bytes, whatever provider layout each o
 
 from __future__ import annotations
 
+import argparse
 from collections.abc import Callable
 from typing import Any
 
@@ -70,3 +71,19 @@ def render(result: dict[str, Any]) -> str:
         lines.append(f"DIFFERS  operator {d['operator']} store {d['store']} partition {d['partition']}: A {left} | B {right}")
     lines.append("IDENTICAL" if result["identical"] else f"NOT IDENTICAL ({len(result['differences'])} partition(s) differ)")
     return "\n".join(lines)
+
+
+def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
+    v = sub.add_parser("verify", parents=[common], help="compare the state of two checkpoints")
+    v.add_argument("a", metavar="A")
+    v.add_argument("b", metavar="B")
+    v.set_defaults(run=run)
+
+
+def run(args: argparse.Namespace, ctx: Any) -> int:
+    from ..errors import VerificationFailed
+
+    result = verify(ctx.open(args.a), ctx.open(args.b), progress=ctx.progress.step)
+    ctx.progress.close()
+    ctx.emit(result, render(result))
+    return 0 if result["identical"] else VerificationFailed.exit_code
