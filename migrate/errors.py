@@ -29,6 +29,10 @@ class CorruptInput(StateshiftError):
     exit_code = 3
 
 
+class IncompleteCheckpoint(CorruptInput):
+    """The directory is a stateshift target whose conversion or import did not finish."""
+
+
 class Unsupported(StateshiftError):
     """The input is valid but uses something this version cannot handle safely."""
 

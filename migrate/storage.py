@@ -26,6 +26,7 @@ from urllib.parse import urlsplit, urlunsplit
 
 import fsspec
 
+from . import faults
 from .errors import CorruptInput, StateshiftError, UsageError
 
 _SECRET_KEYS = re.compile(r"(secret|password|token|key|credential|signature|sas|sig)", re.IGNORECASE)
@@ -238,13 +239,17 @@ class Location:
             os.makedirs(directory, exist_ok=True)
             tmp = os.path.join(directory, f".stateshift-{uuid.uuid4().hex}.tmp")
             with open(tmp, "wb") as f:
-                f.write(data)
+                half = len(data) // 2
+                f.write(data[:half])
+                faults.reached("mid-file")
+                f.write(data[half:])
                 f.flush()
                 os.fsync(f.fileno())
             os.replace(tmp, target)
         else:
             with self.fs.open(target, "wb") as f:
                 f.write(data)
+        faults.reached("file-written")
 
     def put_file(self, local_path: str, rel: str) -> None:
         self._check_writable()

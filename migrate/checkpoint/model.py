@@ -18,7 +18,7 @@ import json
 from dataclasses import dataclass, field
 from typing import Any
 
-from ..errors import CorruptInput, Unsupported
+from ..errors import CorruptInput, IncompleteCheckpoint, Unsupported
 from ..providers import provider_for
 from ..providers.base import Provider, StoreDir
 from ..storage import Entry, Location
@@ -35,7 +35,8 @@ from .logs import (
 
 HDFS_CLASS = "org.apache.spark.sql.execution.streaming.state.HDFSBackedStateStoreProvider"
 _NOT_STORES = {"_metadata", "SSTs", "logs", "_stateSchema"}
-INCOMPLETE_MARKER = "_stateshift_incomplete"
+INCOMPLETE_PREFIX = "stateshift:"  # the first bytes of the placeholder `metadata` of an unfinished target
+JOURNAL_DIR = "_stateshift"
 
 
 @dataclass(frozen=True)
@@ -95,7 +96,7 @@ class Checkpoint:
     conf: dict[str, str] = field(compare=False)
     provider_class: str
     operators: tuple[Operator, ...]
-    incomplete_marker: bool = False
+    log_listings: dict[str, dict[str, Entry]] = field(default_factory=dict, compare=False, repr=False)
 
     @property
     def state_version(self) -> int:
@@ -191,9 +192,18 @@ def load_checkpoint(loc: Location) -> Checkpoint:
     if "offsets" not in root or "metadata" not in root:
         missing = " and ".join(n for n in ("metadata", "offsets") if n not in root)
         raise CorruptInput(f"not a streaming checkpoint: no {missing} here", loc.describe())
-    query = parse_query_metadata(loc.read_text("metadata"), loc.describe("metadata"))
-    offsets = _read_log(loc, "offsets", loc.list_dir("offsets"), parse_offsets)
-    commits = _read_log(loc, "commits", loc.list_dir("commits"), parse_commit) if "commits" in root else {}
+    metadata_text = loc.read_text("metadata")
+    if metadata_text.startswith(INCOMPLETE_PREFIX):
+        raise IncompleteCheckpoint(
+            "incomplete stateshift target: a convert or import into it did not finish; the engine will refuse "
+            "it too. Rerun the same command with --resume, or delete the directory",
+            loc.describe(),
+        )
+    query = parse_query_metadata(metadata_text, loc.describe("metadata"))
+    offsets_listing = loc.list_dir("offsets")
+    commits_listing = loc.list_dir("commits") if "commits" in root else {}
+    offsets = _read_log(loc, "offsets", offsets_listing, parse_offsets)
+    commits = _read_log(loc, "commits", commits_listing, parse_commit)
     orphan = sorted(set(commits) - set(offsets))
     if orphan:
         raise CorruptInput(f"commit entry for batch {orphan[0]} has no offsets entry", loc.describe(f"commits/{orphan[0]}"))
@@ -221,5 +231,5 @@ def load_checkpoint(loc: Location) -> Checkpoint:
         conf=conf,
         provider_class=provider_class,
         operators=tuple(operators),
-        incomplete_marker=INCOMPLETE_MARKER in root,
+        log_listings={"offsets": offsets_listing, "commits": commits_listing},
     )

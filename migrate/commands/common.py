@@ -21,7 +21,7 @@ from ..providers import provider_for
 from ..providers.base import ReadContext, StoreDir, WriteContext, WrittenFile
 from ..storage import Location
 
-INCOMPLETE_TEXT = (
+INCOMPLETE_TEXT = (  # must start with checkpoint.model.INCOMPLETE_PREFIX
     "stateshift: this checkpoint is being written by stateshift and is NOT usable yet.\n"
     "If no stateshift command is running, the command was interrupted: rerun it (with --resume)\n"
     "or delete this directory.\n"
@@ -132,6 +132,24 @@ def run_partition(task: PartitionTask) -> PartitionResult:
         stream.key_bytes,
         stream.value_bytes,
         tuple(written),
+    )
+
+
+def reverify_partition(task: PartitionTask, expected: Digest) -> PartitionResult | None:
+    """Read back a partition an earlier run wrote; a result if it still matches, else None."""
+    dst = provider_for(task.target_provider)
+    try:
+        listing = task.target.location.list_dir(task.target.rel)
+        if not listing:
+            return None
+        ctx = ReadContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, listing=listing)
+        back = digest_batches(dst.read(task.target, task.version, ctx))
+    except StateshiftError:
+        return None
+    if back != expected:
+        return None
+    return PartitionResult(
+        task.source.operator_id, task.source.store_name, task.source.partition, expected, back, 0, 0, 0, ()
     )
 
 

@@ -23,10 +23,24 @@ from typing import Any
 from ..checkpoint.files import conf_changes, rewritten_offsets, verbatim_files
 from ..checkpoint.model import Checkpoint, load_checkpoint
 from ..codecs.hadoop_crc import crc_name, make_crc
-from ..errors import VerificationFailed
+from .. import faults
+from ..checkpoint.liveness import changed_since, running_signs
+from ..digest import Digest
+from ..errors import QueryMayBeRunning, VerificationFailed
+from . import journal
 from ..providers import class_name_for, provider_for
 from ..storage import Location
-from .common import PartitionResult, digest_partition, guard_target, prepare_target, run_partition, run_tasks, tasks_for
+from .common import (
+    PartitionResult,
+    PartitionTask,
+    digest_partition,
+    guard_target,
+    prepare_target,
+    reverify_partition,
+    run_partition,
+    run_tasks,
+    tasks_for,
+)
 
 
 @dataclass
@@ -103,12 +117,16 @@ def convert(
     *,
     dry_run: bool = False,
     overwrite: bool = False,
+    resume: bool = False,
+    force: bool = False,
     jobs: int = 1,
     progress: Callable[[PartitionResult], None] = lambda r: None,
     on_plan: Callable[[int], None] = lambda n: None,
 ) -> ConvertReport:
     guard_target(src, dst)
     ckpt = load_checkpoint(src)
+    if not force:
+        refuse_if_running(ckpt)
     target_class = class_name_for(to)
     target = provider_for(target_class)
     ckpt.provider  # an unknown source provider class raises Unsupported here
@@ -127,25 +145,100 @@ def convert(
     partitions = ckpt.store_partitions()
     on_plan(len(partitions))
     if dry_run:
-        for sp in partitions:
-            op = next(o for o in ckpt.operators if o.operator_id == sp.operator_id)
+        report.partitions = dry_run_partitions(ckpt, target.name, progress)
+        report.files = plan_files(ckpt, target_class)
+        return report
+
+    identity = {
+        "command": "convert",
+        "source": src.display,
+        "query_id": ckpt.query_id,
+        "batch": ckpt.latest_batch,
+        "source_provider": ckpt.provider_class,
+        "target_provider": target_class,
+    }
+    tasks = tasks_for(ckpt, dst, target.name, dict(ckpt.conf), partitions)
+    results = run_journaled(dst, identity, tasks, resume=resume, overwrite=overwrite, jobs=jobs, progress=progress)
+    report.partitions = [r.to_json() for r in results]
+    if not force:
+        refuse_if_running(ckpt, after_read=True)
+    faults.reached("before-logs")
+    publish(ckpt, dst, target_class, report)
+    journal.finish(dst)
+    return report
+
+
+def dry_run_partitions(ckpt: Checkpoint, target_name: str, progress: Callable[[PartitionResult], None]) -> list[dict[str, Any]]:
+    out = []
+    for op in ckpt.operators:
+        for sp in op.partitions:
             digest, size = digest_partition(
                 sp, ckpt.provider_class, ckpt.state_version, ckpt.conf, op.store_info(sp.store_name).num_cols_prefix_key
             )
             r = PartitionResult(sp.operator_id, sp.store_name, sp.partition, digest, None, size, 0, 0)
             progress(r)
             entry = r.to_json()
-            entry["target_files"] = [f"{sp.dir.rel}/{n}" for n in target_names(target.name, ckpt.state_version)]
+            entry["target_files"] = [f"{sp.dir.rel}/{n}" for n in target_names(target_name, ckpt.state_version)]
             del entry["verified"], entry["written"], entry["target_digest"]
-            report.partitions.append(entry)
-        report.files = plan_files(ckpt, target_class)
-        return report
+            out.append(entry)
+    return out
 
-    prepare_target(dst, overwrite)
-    tasks = tasks_for(ckpt, dst, target.name, dict(ckpt.conf), partitions)
-    results = run_tasks(tasks, run_partition, jobs, progress)
+
+def refuse_if_running(ckpt: Checkpoint, after_read: bool = False) -> None:
+    signs = changed_since(ckpt) if after_read else running_signs(ckpt)
+    if signs:
+        raise QueryMayBeRunning(
+            f"the query may still be running: {signs[0]}"
+            + (f" (and {len(signs) - 1} more signs)" if len(signs) > 1 else "")
+            + "; stop it, wait until nothing changes for 10 minutes, or pass --force if you are sure it is stopped",
+            ckpt.location.display,
+        )
+
+
+def run_journaled(
+    dst: Location,
+    identity: dict[str, Any],
+    tasks: list[PartitionTask],
+    *,
+    resume: bool,
+    overwrite: bool,
+    jobs: int,
+    progress: Callable[[PartitionResult], None],
+) -> list[PartitionResult]:
+    """Run partition tasks into ``dst`` with a resume journal; raise if any read-back differs."""
+    if resume:
+        state = journal.resume(dst, identity)
+    else:
+        prepare_target(dst, overwrite)
+        state = journal.start(dst, identity)
+    done: dict[str, PartitionResult] = {}
+    todo: list[PartitionTask] = []
+    for t in tasks:
+        k = journal.key(t.source.operator_id, t.source.store_name, t.source.partition)
+        recorded = state["partitions"].get(k)
+        if recorded is not None:
+            again = reverify_partition(t, Digest.from_json(recorded["digest"]))
+            if again is not None:
+                done[k] = again
+                progress(again)
+                continue
+        t.target.location.remove(t.target.rel, recursive=True)  # drop anything half-written
+        todo.append(t)
+
+    def finished(r: PartitionResult) -> None:
+        if r.ok:
+            state["partitions"][journal.key(r.operator_id, r.store_name, r.partition)] = {
+                "digest": r.source_digest.to_json(),
+                "files": [w.rel for w in r.written],
+            }
+            journal.save(dst, state)
+        progress(r)
+        faults.reached("partition-written")
+
+    for r in run_tasks(todo, run_partition, jobs, finished):
+        done[journal.key(r.operator_id, r.store_name, r.partition)] = r
+    results = [done[journal.key(t.source.operator_id, t.source.store_name, t.source.partition)] for t in tasks]
     bad = [r for r in results if not r.ok]
-    report.partitions = [r.to_json() for r in results]
     if bad:
         r = bad[0]
         raise VerificationFailed(
@@ -155,8 +248,7 @@ def convert(
             f"{len(bad)} partition(s) differ; the target is left marked incomplete",
             dst.display,
         )
-    publish(ckpt, dst, target_class, report)
-    return report
+    return results
 
 
 def target_names(provider: str, version: int) -> list[str]:
@@ -177,6 +269,7 @@ def publish(
         report.files.append(_copy(src, dst, f.rel))
     for rel, data, had_crc in rewritten_offsets(ckpt, target_class):
         report.files += _write_with_crc(dst, rel, data, had_crc)
+    faults.reached("before-metadata")
     if query_metadata is None:
         # the real metadata is the commit point; its sidecar follows (a missing sidecar is harmless)
         report.files.append(_copy(src, dst, "metadata"))
@@ -195,6 +288,8 @@ def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
     c.add_argument("--to", required=True, metavar="PROVIDER", help=f"target provider: {' | '.join(PROVIDER_NAMES)} | <provider class>")
     c.add_argument("--dry-run", action="store_true", help="print the plan as a diff and write nothing")
     c.add_argument("--overwrite", action="store_true", help="replace a non-empty DST")
+    c.add_argument("--resume", action="store_true", help="finish an interrupted run into DST, reusing verified partitions")
+    c.add_argument("--force", action="store_true", help="skip the running-query guard (only if you know the query is stopped)")
     c.add_argument("--jobs", "-j", type=int, default=os.cpu_count() or 1, help="store partitions in parallel (default: cores)")
     c.add_argument("--target-storage-option", action="append", default=[], metavar="KEY=VALUE", help="filesystem option for DST only")
     c.set_defaults(run=run)
@@ -209,7 +304,8 @@ def run(args: argparse.Namespace, ctx: Any) -> int:
     src = ctx.open(args.source, readonly=True)
     dst = ctx.open(args.target, readonly=args.dry_run, extra=args.target_storage_option)
     report = convert(
-        src, dst, args.to, dry_run=args.dry_run, overwrite=args.overwrite, jobs=args.jobs,
+        src, dst, args.to, dry_run=args.dry_run, overwrite=args.overwrite, resume=args.resume, force=args.force,
+        jobs=args.jobs,
         progress=ctx.progress.step, on_plan=ctx.progress.start,
     )
     ctx.progress.close()

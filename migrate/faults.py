@@ -1,0 +1,28 @@
+"""Deterministic crash points for the crash-safety tests (inactive unless the variable is set).
+
+``STATESHIFT_CRASH_AT=<event>:<n>`` makes the process SIGKILL itself the n-th time it reaches
+``<event>`` (events: ``partition-written``, ``file-written``, ``mid-file``, ``before-logs``,
+``before-metadata``). Nothing happens when the variable is unset. This is how the tests prove that
+a process killed at any of these points leaves no usable-looking target and that ``--resume``
+finishes the job.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+
+_ENV = "STATESHIFT_CRASH_AT"
+_counts: dict[str, int] = {}  # per-process event counts; only touched when the variable is set
+
+
+def reached(event: str) -> None:
+    spec = os.environ.get(_ENV)
+    if not spec:
+        return
+    name, _, nth = spec.partition(":")
+    if name != event:
+        return
+    _counts[event] = _counts.get(event, 0) + 1
+    if _counts[event] == int(nth or 1):
+        os.kill(os.getpid(), signal.SIGKILL)

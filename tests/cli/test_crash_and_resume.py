@@ -1,0 +1,88 @@
+"""A convert killed (SIGKILL) at any point leaves no usable-looking target, and --resume finishes it."""
+
+import json
+
+import pytest
+
+from helpers import demo_copy, stateshift, tree_digest
+
+CRASH_POINTS = [
+    "mid-file:1",  # inside the very first file (the placeholder metadata)
+    "file-written:2",  # right after the journal was started
+    "mid-file:4",  # inside a state file of the first partition
+    "partition-written:1",
+    "partition-written:2",
+    "mid-file:12",
+    "before-logs:1",
+    "file-written:30",  # while copying verbatim files / rewriting offsets
+    "before-metadata:1",
+]
+
+
+@pytest.mark.parametrize("target", ["rocksdb", "hdfs"])
+@pytest.mark.parametrize("point", CRASH_POINTS)
+def test_killed_convert_is_unusable_then_resumes(tmp_path, point, target):
+    name = "greenhouse_totals_hdfs" if target == "rocksdb" else "greenhouse_totals_rocksdb"
+    src = demo_copy(name, tmp_path)
+    before = tree_digest(src)
+    dst = tmp_path / "out"
+    crashed = stateshift("convert", str(src), str(dst), "--to", target, "-j", "1", "--force",
+                         env={"STATESHIFT_CRASH_AT": point})
+    assert crashed.returncode == -9, crashed.stderr  # it really was killed at that point
+
+    # (1) not usable: the engine parses `metadata` as JSON first; ours is a placeholder text
+    if (dst / "metadata").exists():
+        with pytest.raises(json.JSONDecodeError):
+            json.loads((dst / "metadata").read_text())
+    shown = stateshift("inspect", str(dst))
+    assert shown.returncode != 0
+    assert "incomplete" in shown.stderr or "not a streaming checkpoint" in shown.stderr or "empty" in shown.stderr
+
+    # (2) --resume finishes the job (or a plain rerun when nothing was started yet)
+    resumed = stateshift("convert", str(src), str(dst), "--to", target, "-j", "1", "--force", "--resume")
+    if resumed.returncode != 0 and "no metadata" in resumed.stderr:
+        resumed = stateshift("convert", str(src), str(dst), "--to", target, "-j", "1", "--force", "--overwrite")
+    assert resumed.returncode == 0, resumed.stderr
+    assert not (dst / "_stateshift").exists()
+    assert json.loads((dst / "metadata").read_text())["id"]
+    same = stateshift("verify", str(src), str(dst))
+    assert same.returncode == 0, same.stdout + same.stderr
+    assert tree_digest(src) == before
+
+
+def test_resume_reuses_verified_partitions_and_redoes_tampered_ones(tmp_path):
+    src = demo_copy("greenhouse_totals_hdfs", tmp_path)
+    dst = tmp_path / "out"
+    crashed = stateshift("convert", str(src), str(dst), "--to", "hdfs", "-j", "1", "--force",
+                         env={"STATESHIFT_CRASH_AT": "before-logs:1"})
+    assert crashed.returncode == -9
+    journal = json.loads((dst / "_stateshift/journal.json").read_text())
+    assert len(journal["partitions"]) >= 2
+    # damage one partition written by the first run: resume must notice (digest) and rewrite it
+    snap = sorted(dst.glob("state/0/0/*.snapshot"))[0]
+    crc = snap.with_name(f".{snap.name}.crc")
+    crc.unlink()
+    snap.write_bytes(snap.read_bytes()[:-3])
+    resumed = stateshift("convert", str(src), str(dst), "--to", "hdfs", "-j", "1", "--force", "--resume", "--json")
+    assert resumed.returncode == 0, resumed.stderr
+    report = json.loads(resumed.stdout)
+    rewritten = [p for p in report["partitions"] if p["written"]]
+    reused = [p for p in report["partitions"] if not p["written"]]
+    assert [p["partition"] for p in rewritten] == [0]
+    assert reused and all(p["verified"] for p in report["partitions"])
+    assert stateshift("verify", str(src), str(dst)).returncode == 0
+
+
+def test_resume_refuses_a_finished_or_foreign_target(tmp_path):
+    src = demo_copy("greenhouse_totals_hdfs", tmp_path)
+    other = demo_copy("sensor_pings_dedup_hdfs", tmp_path)
+    dst = tmp_path / "out"
+    assert stateshift("convert", str(src), str(dst), "--to", "rocksdb", "--force").returncode == 0
+    again = stateshift("convert", str(src), str(dst), "--to", "rocksdb", "--force", "--resume")
+    assert again.returncode == 6 and "finished checkpoint" in again.stderr
+    dst2 = tmp_path / "out2"
+    crashed = stateshift("convert", str(src), str(dst2), "--to", "rocksdb", "-j", "1", "--force",
+                         env={"STATESHIFT_CRASH_AT": "partition-written:1"})
+    assert crashed.returncode == -9
+    foreign = stateshift("convert", str(other), str(dst2), "--to", "rocksdb", "--force", "--resume")
+    assert foreign.returncode == 6 and "different source" in foreign.stderr
