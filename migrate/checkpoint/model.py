@@ -182,6 +182,22 @@ def _load_operator(loc: Location, op_id: int) -> Operator:
     return Operator(op_id, name, tuple(stores), tuple(parts), meta)
 
 
+def _refuse_unexplained_versions(operators: list[Operator], provider: Provider, newest_batch: int) -> None:
+    """State files can run ahead of the commit log by one in-flight batch, never further: batch b
+    writes version b+1 only after its offsets entry exists. Anything newer is inconsistent."""
+    limit = newest_batch + 1
+    for op in operators:
+        for sp in op.partitions:
+            ahead = [v for v in provider.versions(sp.listing) if v > limit]
+            if ahead:
+                name = next(n for n in sorted(sp.listing) if n.split(".")[0].split("_")[0] == str(ahead[0]))
+                raise CorruptInput(
+                    f"state version {ahead[0]} is newer than the commit log and the offsets log allow "
+                    f"(newest offsets entry is batch {newest_batch}, so at most version {limit} can exist)",
+                    sp.dir.describe(name),
+                )
+
+
 def load_checkpoint(loc: Location) -> Checkpoint:
     """Read the model of the checkpoint at ``loc`` (never writes)."""
     root = loc.list_dir("")
@@ -189,16 +205,16 @@ def load_checkpoint(loc: Location) -> Checkpoint:
         if not loc.exists(""):
             raise CorruptInput("checkpoint directory does not exist", loc.describe())
         raise CorruptInput("directory is empty; not a streaming checkpoint", loc.describe())
-    if "offsets" not in root or "metadata" not in root:
-        missing = " and ".join(n for n in ("metadata", "offsets") if n not in root)
-        raise CorruptInput(f"not a streaming checkpoint: no {missing} here", loc.describe())
-    metadata_text = loc.read_text("metadata")
+    metadata_text = loc.read_text("metadata") if "metadata" in root else ""
     if metadata_text.startswith(INCOMPLETE_PREFIX):
         raise IncompleteCheckpoint(
             "incomplete stateshift target: a convert or import into it did not finish; the engine will refuse "
             "it too. Rerun the same command with --resume, or delete the directory",
             loc.describe(),
         )
+    if "offsets" not in root or "metadata" not in root:
+        missing = " and ".join(n for n in ("metadata", "offsets") if n not in root)
+        raise CorruptInput(f"not a streaming checkpoint: no {missing} here", loc.describe())
     query = parse_query_metadata(metadata_text, loc.describe("metadata"))
     offsets_listing = loc.list_dir("offsets")
     commits_listing = loc.list_dir("commits") if "commits" in root else {}
@@ -221,6 +237,7 @@ def load_checkpoint(loc: Location) -> Checkpoint:
         state = loc.list_dir("state")
         for op_id in sorted(int(n) for n, e in state.items() if n.isdigit() and e.is_dir):
             operators.append(_load_operator(loc, op_id))
+    _refuse_unexplained_versions(operators, provider_for(provider_class), max(offsets))
     return Checkpoint(
         location=loc,
         query_id=str(query["id"]),

@@ -1,0 +1,166 @@
+"""Corrupt and hostile input: each case gives a one-line error naming the file, a documented exit
+code, leaves the source untouched and leaves nothing usable-looking at the target."""
+
+import json
+import os
+import shutil
+import struct
+
+import pytest
+
+from helpers import demo_copy, stateshift, tree_digest
+
+CORRUPT, UNSUPPORTED, UNSAFE = 3, 4, 6
+
+
+def _part(src, p=0):
+    return src / "state" / "0" / str(p)
+
+
+def _newest(src, suffix, p=0):
+    return max(_part(src, p).glob(f"*.{suffix}"), key=lambda f: int(f.name.split(".")[0]))
+
+
+def _drop_crc(f):
+    crc = f.with_name(f".{f.name}.crc")
+    if crc.exists():
+        crc.unlink()
+
+
+def truncated_delta(src):
+    f = _newest(src, "delta")
+    _drop_crc(f)
+    f.write_bytes(f.read_bytes()[:-7])
+    return f.name
+
+
+def block_checksum_mismatch(src):
+    f = _newest(src, "delta")
+    _drop_crc(f)
+    data = bytearray(f.read_bytes())
+    # lz4-java block header: magic(8) token(1) compressed(4) original(4) checksum(4), little-endian
+    (checksum,) = struct.unpack_from("<i", data, 17)
+    struct.pack_into("<i", data, 17, checksum ^ 0x1)
+    f.write_bytes(bytes(data))
+    return "checksum"
+
+
+def crc_sidecar_mismatch(src):
+    f = _newest(src, "delta")
+    data = bytearray(f.read_bytes())
+    data[-14] ^= 0xFF  # inside the final empty block's zero fields: the sidecar no longer matches
+    f.write_bytes(bytes(data))
+    return f.name
+
+
+def gap_in_delta_chain(src):
+    f = sorted(_part(src).glob("*.delta"), key=lambda f: int(f.name.split(".")[0]))[1]
+    _drop_crc(f)
+    f.unlink()
+    return f"{f.name} is missing"
+
+
+def snapshot_newer_than_commit_log(src):
+    f = _newest(src, "delta")
+    v = int(f.name.split(".")[0])
+    shutil.copyfile(f, f.with_name(f"{v + 5}.snapshot"))
+    os.utime(f.with_name(f"{v + 5}.snapshot"), (1, 1))
+    return f"{v + 5}.snapshot"
+
+
+def malformed_offsets_json(src):
+    f = max((p for p in (src / "offsets").iterdir() if p.name.isdigit()), key=lambda p: int(p.name))
+    _drop_crc(f)
+    f.write_text(f.read_text().replace('"conf":{', '"conf":{{', 1))
+    return f"offsets/{f.name}"
+
+
+def malformed_commits_json(src):
+    f = max((p for p in (src / "commits").iterdir() if p.name.isdigit()), key=lambda p: int(p.name))
+    _drop_crc(f)
+    f.write_text("v1\n{nextBatchWatermarkMs:0}")
+    return f"commits/{f.name}"
+
+
+def unknown_provider_class(src):
+    for f in (src / "offsets").iterdir():
+        if f.name.isdigit():
+            f.write_text(f.read_text().replace("HDFSBackedStateStoreProvider", "TapeDriveStateStoreProvider"))
+            _drop_crc(f)
+    return "TapeDriveStateStoreProvider"
+
+
+def not_a_checkpoint(src):
+    shutil.rmtree(src)
+    (src / "notes").mkdir(parents=True)
+    (src / "notes" / "readme.txt").write_text("just some files")
+    return "not a streaming checkpoint"
+
+
+def empty_directory(src):
+    shutil.rmtree(src)
+    src.mkdir()
+    return "empty"
+
+
+CASES = [
+    (truncated_delta, CORRUPT),
+    (block_checksum_mismatch, CORRUPT),
+    (crc_sidecar_mismatch, CORRUPT),
+    (gap_in_delta_chain, CORRUPT),
+    (snapshot_newer_than_commit_log, CORRUPT),
+    (malformed_offsets_json, CORRUPT),
+    (malformed_commits_json, CORRUPT),
+    (unknown_provider_class, UNSUPPORTED),
+    (not_a_checkpoint, CORRUPT),
+    (empty_directory, CORRUPT),
+]
+
+
+@pytest.mark.parametrize("damage, code", CASES, ids=[c[0].__name__ for c in CASES])
+def test_bad_source_is_refused_cleanly(tmp_path, damage, code):
+    src = demo_copy("greenhouse_totals_hdfs", tmp_path)
+    expected = damage(src)
+    before = tree_digest(src)
+    dst = tmp_path / "out"
+    for args in (["convert", str(src), str(dst), "--to", "rocksdb"], ["convert", str(src), str(dst), "--to", "rocksdb", "--dry-run"]):
+        r = stateshift(*args)
+        assert r.returncode == code, (r.returncode, r.stderr)
+        lines = r.stderr.strip().splitlines()
+        assert len(lines) == 1 and lines[0].startswith("stateshift: error: "), r.stderr
+        assert expected in lines[0]
+        assert str(src) in lines[0] or "stateshift: error: " in lines[0]
+        assert "Traceback" not in r.stderr
+    assert tree_digest(src) == before
+    # nothing usable at the target: absent, or marked incomplete (metadata is not JSON)
+    if (dst / "metadata").exists():
+        with pytest.raises(json.JSONDecodeError):
+            json.loads((dst / "metadata").read_text())
+
+
+def test_target_equal_to_or_inside_the_source_is_refused(tmp_path):
+    src = demo_copy("greenhouse_totals_hdfs", tmp_path)
+    before = tree_digest(src)
+    for dst, words in ((src, "the source itself"), (src / "state" / "copy", "inside the source"), (tmp_path, "contains the source")):
+        r = stateshift("convert", str(src), str(dst), "--to", "rocksdb", "--overwrite")
+        assert r.returncode == UNSAFE and words in r.stderr, r.stderr
+    assert tree_digest(src) == before
+
+
+def test_non_empty_target_needs_overwrite(tmp_path):
+    src = demo_copy("greenhouse_totals_hdfs", tmp_path)
+    dst = tmp_path / "busy"
+    dst.mkdir()
+    (dst / "keep.txt").write_text("someone's files")
+    r = stateshift("convert", str(src), str(dst), "--to", "rocksdb")
+    assert r.returncode == UNSAFE and "--overwrite" in r.stderr
+    assert (dst / "keep.txt").read_text() == "someone's files"
+
+
+def test_an_incomplete_target_is_not_a_valid_source(tmp_path):
+    src = demo_copy("greenhouse_totals_hdfs", tmp_path)
+    dst = tmp_path / "half"
+    r = stateshift("convert", str(src), str(dst), "--to", "hdfs", "-j", "1", env={"STATESHIFT_CRASH_AT": "partition-written:1"})
+    assert r.returncode == -9
+    again = stateshift("convert", str(dst), str(tmp_path / "x"), "--to", "rocksdb")
+    assert again.returncode == CORRUPT and "incomplete stateshift target" in again.stderr
