@@ -54,11 +54,7 @@ _CODECS: MappingProxyType[str, tuple[Codec, str]] = MappingProxyType(
 CODEC_NAMES: tuple[str, ...] = tuple(_CODECS)
 
 _ALIASES: MappingProxyType[str, str] = MappingProxyType(
-    {
-        alias.lower(): short
-        for short, (_, cls) in _CODECS.items()
-        for alias in (short, cls, cls.rsplit(".", 1)[1])
-    }
+    {alias.lower(): short for short, (_, cls) in _CODECS.items() for alias in (short, cls, cls.rsplit(".", 1)[1])}
 )
 
 
@@ -70,9 +66,7 @@ def codec_for(name: str, where: str = "") -> Codec:
     """
     short = _ALIASES.get(name.strip().lower())
     if short is None:
-        raise Unsupported(
-            f"unknown state compression codec {name!r} (known: {', '.join(CODEC_NAMES)})", where or None
-        )
+        raise Unsupported(f"unknown state compression codec {name!r} (known: {', '.join(CODEC_NAMES)})", where or None)
     return _CODECS[short][0]
 
 

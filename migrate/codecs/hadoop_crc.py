@@ -6,9 +6,15 @@ the CRC matched ``zlib.crc32``, the plain CRC-32 polynomial, not CRC-32C):
     "crc" 00                    4 bytes magic
     bytes per checksum          int32 big-endian (512)
     one CRC-32 per chunk        uint32 big-endian, for each ``bytes per checksum`` slice of the
-                                data file; the last slice may be shorter; none for an empty file
+                                data file; the last slice may be shorter; none for an empty
+                                file (from memory: Hadoop writes the header only)
 
-The per-chunk loop runs in C (``map`` of ``zlib.crc32`` over memoryview slices, ~0.7 GB/s here).
+The engine does not check sidecars on its own state reads (its FileContext path on the local file
+system; observed), but Hadoop's FileSystem reader does, so a rewritten file needs a fresh sidecar
+(or none: from memory, a missing sidecar is not an error for either reader).
+
+The per-chunk loop runs in C (``map`` of ``zlib.crc32`` over memoryview slices): measured ~0.7 GB/s
+on a 64 MiB buffer here, ten times faster than a numpy table-driven CRC over all chunks at once.
 """
 
 from __future__ import annotations
@@ -22,6 +28,8 @@ from array import array
 from ..errors import CorruptInput
 
 MAGIC = b"crc\x00"
+if array("I").itemsize != 4:  # pragma: no cover - never: "I" is 4 bytes wherever CPython runs here
+    raise ImportError("hadoop_crc needs a 4-byte unsigned int array type")
 HEADER = struct.Struct(">4si")
 DEFAULT_BYTES_PER_CHECKSUM = 512
 
@@ -41,8 +49,6 @@ def chunk_crcs(data: bytes, bytes_per_checksum: int = DEFAULT_BYTES_PER_CHECKSUM
     view = memoryview(data)
     step = bytes_per_checksum
     sums = array("I", map(zlib.crc32, (view[i : i + step] for i in range(0, len(view), step))))
-    if sums.itemsize != 4:  # pragma: no cover - "I" is 4 bytes on every platform we run on
-        sums = array("L", sums)
     if sys.byteorder == "little":
         sums.byteswap()
     return sums.tobytes()
@@ -72,4 +78,6 @@ def verify_crc(data: bytes, crc: bytes, where: str) -> None:
         )
     if stored != expected:
         first = next(i for i in range(0, len(expected), 4) if stored[i : i + 4] != expected[i : i + 4]) // 4
-        raise CorruptInput(f"checksum mismatch in bytes {first * step}..{min(len(data), (first + 1) * step) - 1}", where)
+        raise CorruptInput(
+            f"checksum mismatch in bytes {first * step}..{min(len(data), (first + 1) * step) - 1}", where
+        )

@@ -112,7 +112,9 @@ class Lz4BlockStream:
                 try:
                     raw = lz4.block.decompress(payload, uncompressed_size=orig_len)
                 except lz4.block.LZ4BlockError as exc:
-                    raise CorruptInput(f"lz4 stream: block at offset {pos} does not decompress ({exc})", where) from None
+                    raise CorruptInput(
+                        f"lz4 stream: block at offset {pos} does not decompress ({exc})", where
+                    ) from None
                 if len(raw) != orig_len:
                     raise CorruptInput(
                         f"lz4 stream: block at offset {pos} decompresses to {len(raw)} bytes, header says {orig_len}",
@@ -141,4 +143,3 @@ class Lz4BlockStream:
             out.append(payload)
         out.append(HEADER.pack(MAGIC, METHOD_RAW | level, 0, 0, 0))
         return b"".join(out)
-

@@ -70,7 +70,9 @@ class LzfStream:
                 try:
                     raw = lzf.decompress(bytes(payload), original)
                 except (ValueError, SystemError) as exc:
-                    raise CorruptInput(f"lzf stream: chunk at offset {pos} does not decompress ({exc})", where) from None
+                    raise CorruptInput(
+                        f"lzf stream: chunk at offset {pos} does not decompress ({exc})", where
+                    ) from None
                 if raw is None or len(raw) != original:
                     raise CorruptInput(
                         f"lzf stream: chunk at offset {pos} does not decompress to the {original} bytes its header says",

@@ -90,6 +90,4 @@ def _check_header(view: memoryview, pos: int, where: str) -> None:
     if magic != MAGIC:
         raise CorruptInput(f"snappy stream: bad magic at offset {pos}", where)
     if version < COMPATIBLE_VERSION or compatible != COMPATIBLE_VERSION:
-        raise CorruptInput(
-            f"snappy stream: unknown stream version {version}/{compatible} at offset {pos}", where
-        )
+        raise CorruptInput(f"snappy stream: unknown stream version {version}/{compatible} at offset {pos}", where)
