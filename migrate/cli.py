@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 from typing import Any
 
@@ -129,6 +130,13 @@ def main(argv: list[str] | None = None) -> int:
     except StateshiftError as exc:
         print(f"stateshift: error: {mask_text(str(exc), secrets)}", file=sys.stderr)
         return exc.exit_code
+    except BrokenPipeError:
+        # the reader of our output went away (e.g. `| head`); the work itself is complete
+        try:
+            sys.stdout = open(os.devnull, "w")
+        except OSError:
+            pass
+        return 0
     except KeyboardInterrupt:
         print("stateshift: interrupted; the target (if any) is left marked incomplete", file=sys.stderr)
         return 130

@@ -2,7 +2,8 @@
 
 Order of work:
 
-1. read the source model and pick the state version (the latest consistent one, or ``V``, which
+1. read the source model, refuse a source that looks like a running query (``--force``
+   overrides, as for convert), and pick the state version (the latest consistent one, or ``V``, which
    must have a commit entry for batch ``V - 1`` and state files that rebuild it);
 2. refuse an unsafe or non-empty ARCHIVE (``--overwrite`` replaces it);
 3. per store partition: read the version as batches, digest them, decode the typed columns and
@@ -27,8 +28,22 @@ from typing import Any
 
 from .. import __version__
 from ..archive.columns import RowDecoder, decoder_for, find_schema_file, schema_json
-from ..archive.manifest import DATA_DIR, DataFile, Manifest, OperatorEntry, StoreEntry, seal
-from ..archive.writer import WrittenData, checkpoint_rel, copy_verbatim, data_file_rel, write_data_file, write_manifest
+from ..archive.manifest import (
+    DATA_DIR,
+    DataFile,
+    Manifest,
+    OperatorEntry,
+    StoreEntry,
+    seal,
+)
+from ..archive.writer import (
+    WrittenData,
+    checkpoint_rel,
+    copy_verbatim,
+    data_file_rel,
+    write_data_file,
+    write_manifest,
+)
 from ..checkpoint.files import CopyFile, verbatim_files
 from ..checkpoint.logs import CODEC_CONF, PROVIDER_CONF
 from ..checkpoint.model import HDFS_CLASS, Checkpoint, load_checkpoint
@@ -38,6 +53,7 @@ from ..providers import provider_for
 from ..providers.base import ReadContext, StoreDir
 from ..storage import Location
 from .common import guard_target, run_tasks
+from .convert import refuse_if_running
 
 _LOG_FILE = re.compile(r"^(offsets|commits)/\.?(\d+)(\.crc)?$")
 
@@ -156,7 +172,7 @@ def _prepare_archive(archive: Location, overwrite: bool) -> None:
     existing = archive.list_dir("")
     if existing and not overwrite:
         raise UnsafeTarget(
-            f"archive target is not empty ({len(existing)} entries, e.g. {sorted(existing)[0]}); pass --overwrite to replace it",
+            f"archive target is not empty ({len(existing)} entries, e.g. {min(existing)}); pass --overwrite to replace it",
             archive.display,
         )
     for name in existing:
@@ -189,12 +205,15 @@ def export(
     *,
     version: int | None = None,
     overwrite: bool = False,
+    force: bool = False,
     jobs: int = 1,
     progress: Callable[[Any], None] = lambda r: None,
     on_plan: Callable[[int], None] = lambda n: None,
 ) -> ExportReport:
     guard_target(src, archive)
     full = load_checkpoint(src)
+    if not force:
+        refuse_if_running(full)
     ckpt = at_version(full, version)
     latest = ckpt.latest_batch == full.latest_batch
     provider = ckpt.provider  # unknown provider class -> Unsupported
@@ -242,6 +261,8 @@ def export(
             listing=sp.listing,
         ))
     results: list[ExportResult] = run_tasks(tasks, run_export_task, jobs, progress)  # type: ignore[arg-type]
+    if not force:
+        refuse_if_running(full, after_read=True)
 
     data_files = []
     for r in results:
@@ -300,8 +321,8 @@ def render(report: ExportReport) -> str:
         f"      to {report.archive}",
         f"  query {m.query_id}, batch {m.batch_id} (state version {m.state_version})",
         f"  provider {m.provider_class}, codec {m.codec}",
-        f"  {len(m.data_files)} store partition(s), {m.rows} rows, {data_bytes} bytes of Parquet; "
-        f"{len(m.checkpoint_files)} checkpoint file(s) kept verbatim",
+        (f"  {len(m.data_files)} store partition(s), {m.rows} rows, {data_bytes} bytes of Parquet; "
+         f"{len(m.checkpoint_files)} checkpoint file(s) kept verbatim"),
     ]
     for op in m.operators:
         for s in op.stores:
@@ -321,6 +342,7 @@ def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
     e.add_argument("--version", type=int, default=None, metavar="V",
                    help="state version to export (default: the latest consistent one); needs a commit for batch V-1")
     e.add_argument("--overwrite", action="store_true", help="replace a non-empty ARCHIVE")
+    e.add_argument("--force", action="store_true", help="skip the running-query guard (only if you know the query is stopped)")
     e.add_argument("--jobs", "-j", type=int, default=os.cpu_count() or 1, help="store partitions in parallel (default: cores)")
     e.add_argument("--target-storage-option", action="append", default=[], metavar="KEY=VALUE", help="filesystem option for ARCHIVE only")
     e.set_defaults(run=run)
@@ -333,7 +355,7 @@ def run(args: argparse.Namespace, ctx: Any) -> int:
         raise UsageError("--jobs must be at least 1")
     src = ctx.open(args.source, readonly=True)
     archive = ctx.open(args.archive, readonly=False, extra=args.target_storage_option)
-    report = export(src, archive, version=args.version, overwrite=args.overwrite, jobs=args.jobs,
+    report = export(src, archive, version=args.version, overwrite=args.overwrite, force=args.force, jobs=args.jobs,
                     progress=ctx.progress.step, on_plan=ctx.progress.start)
     ctx.progress.close()
     for w in report.warnings:

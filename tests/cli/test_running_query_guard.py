@@ -44,6 +44,7 @@ def test_old_uncommitted_batch_is_reported_but_accepted(tmp_path):
 
 def test_fresh_state_files_newer_than_the_commit_are_refused(tmp_path):
     src = demo_copy("greenhouse_totals_hdfs", tmp_path)
+    _add_uncommitted_batch(src, age_seconds=3600)  # an old in-flight batch explains one more version
     part = src / "state" / "0" / "0"
     newest = max(int(p.name.split(".")[0]) for p in part.glob("*.delta"))
     shutil.copyfile(part / f"{newest}.delta", part / f"{newest + 1}.delta")  # written "now"

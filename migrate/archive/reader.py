@@ -1,0 +1,123 @@
+"""Reading an archive: the sealed manifest, the integrity check of every file, and the raw rows.
+
+``check_archive`` is what makes an archive trustworthy before anything is restored from it:
+
+1. every file the manifest lists exists and has the listed size (one listing per directory);
+2. no other file exists in the archive (an unlisted data file would be state nobody vouched for);
+3. every listed file's SHA-256 matches (streamed, 1 MiB at a time).
+
+The first problem found is raised as one :class:`~migrate.errors.CorruptInput` naming the file.
+
+``read_rows`` yields batches of the provider row schema (raw ``key``/``value`` only) from one
+data file; the typed columns are for people and are never used to restore.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Callable, Iterator
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ..errors import CorruptInput
+from ..providers.base import BATCH_ROWS, ROW_SCHEMA
+from ..storage import Location
+from .manifest import MANIFEST_NAME, DataFile, Manifest, parse_manifest
+
+_CHUNK = 1 << 20
+
+
+def load_manifest(archive: Location) -> Manifest:
+    """The archive's parsed, seal-checked manifest."""
+    root = archive.list_dir("")
+    if MANIFEST_NAME not in root:
+        if not root and not archive.exists(""):
+            raise CorruptInput("archive directory does not exist", archive.describe())
+        raise CorruptInput(f"no {MANIFEST_NAME} here: not a stateshift archive, or its export did not finish", archive.describe())
+    where = archive.describe(MANIFEST_NAME)
+    manifest = parse_manifest(archive.read_text(MANIFEST_NAME), where)
+    seen: set[str] = set()
+    for path in manifest.all_paths():
+        if path in seen or path == MANIFEST_NAME:
+            raise CorruptInput(f"lists the file {path} twice", where)
+        seen.add(path)
+    keys = [(d.operator, d.store, d.partition) for d in manifest.data_files]
+    if len(set(keys)) != len(keys):
+        raise CorruptInput("lists the same operator/store/partition in two data files", where)
+    return manifest
+
+
+def list_files(archive: Location, rel: str = "") -> dict[str, int]:
+    """Every file under the archive (hidden ones included), relative path -> size."""
+    out: dict[str, int] = {}
+    for name, entry in sorted(archive.list_dir(rel).items()):
+        child = f"{rel}/{name}" if rel else name
+        if entry.is_dir:
+            out.update(list_files(archive, child))
+        else:
+            out[child] = entry.size
+    return out
+
+
+def sha256_of(archive: Location, rel: str) -> str:
+    h = hashlib.sha256()
+    with archive.open_read(rel) as f:
+        while chunk := f.read(_CHUNK):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def check_archive(archive: Location, manifest: Manifest, progress: Callable[[str], None] = lambda rel: None) -> int:
+    """Refuse a tampered, truncated or incomplete archive; returns the number of bytes checked."""
+    present = list_files(archive)
+    listed = {f.path: (f.bytes, f.sha256) for f in manifest.checkpoint_files}
+    listed.update({d.path: (d.bytes, d.sha256) for d in manifest.data_files})
+    for path, (size, _) in listed.items():
+        if path not in present:
+            raise CorruptInput(f"file is missing from the archive (it is listed in {MANIFEST_NAME})", archive.describe(path))
+        if present[path] != size:
+            raise CorruptInput(
+                f"file is {present[path]} bytes but {MANIFEST_NAME} lists {size} bytes (truncated or replaced)",
+                archive.describe(path),
+            )
+    for path in present:
+        if path != MANIFEST_NAME and path not in listed:
+            raise CorruptInput(f"file is not listed in {MANIFEST_NAME}; an archive with unlisted files is refused", archive.describe(path))
+    total = 0
+    for path, (size, sha) in listed.items():
+        if sha256_of(archive, path) != sha:
+            raise CorruptInput(f"SHA-256 does not match {MANIFEST_NAME}: the file was changed", archive.describe(path))
+        total += size
+        progress(path)
+    return total
+
+
+def read_rows(archive: Location, data_file: DataFile, batch_rows: int = BATCH_ROWS) -> Iterator[pa.RecordBatch]:
+    """Raw rows of one data file as batches of :data:`~migrate.providers.base.ROW_SCHEMA`."""
+    where = archive.describe(data_file.path)
+    with archive.open_read(data_file.path) as f:
+        try:
+            pf = pq.ParquetFile(f)
+        except (pa.ArrowException, OSError) as exc:
+            raise CorruptInput(f"is not a readable Parquet file ({' '.join(str(exc).split())})", where) from exc
+        names = pf.schema_arrow.names
+        for col in ("key", "value"):
+            if col not in names:
+                raise CorruptInput(f"Parquet file has no raw '{col}' column", where)
+            t = pf.schema_arrow.field(col).type
+            if not (pa.types.is_binary(t) or pa.types.is_large_binary(t)):
+                raise CorruptInput(f"raw column '{col}' is {t}, not binary", where)
+        rows = 0
+        try:
+            for batch in pf.iter_batches(batch_size=batch_rows, columns=["key", "value"]):
+                if batch.column("key").null_count or batch.column("value").null_count:
+                    raise CorruptInput("raw key/value column holds nulls", where)
+                rows += batch.num_rows
+                yield pa.RecordBatch.from_arrays(
+                    [batch.column("key").cast(pa.binary()), batch.column("value").cast(pa.binary())], schema=ROW_SCHEMA
+                )
+        except pa.ArrowException as exc:
+            raise CorruptInput(f"Parquet data does not read back ({' '.join(str(exc).split())})", where) from exc
+        if rows != data_file.rows:
+            raise CorruptInput(f"holds {rows} rows but {MANIFEST_NAME} lists {data_file.rows}", where)

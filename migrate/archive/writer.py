@@ -1,0 +1,152 @@
+"""Writing an archive: one streamed Parquet file per store partition, verbatim copies, the manifest.
+
+Data files are written with ``pyarrow.parquet.ParquetWriter`` one row group per incoming batch,
+so memory stays at one batch however large a partition is. Size and SHA-256 are computed on the
+bytes as they are written (no second read). On local disk a data file is written under a
+temporary name and renamed; on object stores the upload itself is atomic.
+
+Nothing here knows about providers: batches of raw ``key``/``value`` rows come in, files go out.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import os
+import uuid
+from collections.abc import Iterable
+from dataclasses import dataclass
+from typing import IO
+from urllib.parse import quote
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ..digest import Digest, DigestingIterator
+from ..storage import Location
+from .columns import RowDecoder
+from .manifest import (
+    CHECKPOINT_DIR,
+    DATA_DIR,
+    MANIFEST_NAME,
+    ArchivedFile,
+    Manifest,
+    manifest_text,
+)
+
+PARQUET_COMPRESSION = "zstd"
+
+
+def data_file_rel(operator_id: int, store: str, partition: int) -> str:
+    """Hive-style path of one store partition's data file (store names are URL-quoted)."""
+    return f"{DATA_DIR}/operator={operator_id}/store={quote(store, safe='-_.')}/partition={partition}/part-0.parquet"
+
+
+def checkpoint_rel(rel: str) -> str:
+    """Where a checkpoint-relative metadata file is kept inside the archive."""
+    return f"{CHECKPOINT_DIR}/{rel}"
+
+
+class _HashingWriter(io.RawIOBase):
+    """A write-only file object that hashes and counts what passes through to ``target``."""
+
+    def __init__(self, target: IO[bytes]) -> None:
+        super().__init__()
+        self._target = target
+        self.sha256 = hashlib.sha256()
+        self.size = 0
+
+    def writable(self) -> bool:
+        return True
+
+    def write(self, data: bytes | bytearray | memoryview) -> int:  # type: ignore[override]
+        view = memoryview(data).cast("B")
+        self._target.write(view)
+        self.sha256.update(view)
+        self.size += len(view)
+        return len(view)
+
+    def tell(self) -> int:
+        return self.size
+
+    def flush(self) -> None:
+        self._target.flush()
+
+
+@dataclass(frozen=True)
+class WrittenData:
+    rel: str
+    bytes: int
+    sha256: str
+    digest: Digest
+    key_bytes: int
+    value_bytes: int
+    undecoded_rows: int
+    decode_error: str | None  # the first reason a batch did not decode, if any
+
+
+def _open_target(loc: Location, rel: str) -> tuple[IO[bytes], str | None]:
+    """(file object, temporary local path to rename on success or None)."""
+    target = loc.path(rel)
+    if loc.is_local:
+        directory = os.path.dirname(target)
+        os.makedirs(directory, exist_ok=True)
+        tmp = os.path.join(directory, f".stateshift-{uuid.uuid4().hex}.tmp")
+        return open(tmp, "wb"), tmp
+    return loc.fs.open(target, "wb"), None
+
+
+def write_data_file(
+    loc: Location, rel: str, batches: Iterable[pa.RecordBatch], decoder: RowDecoder, metadata: dict[str, str]
+) -> WrittenData:
+    """Stream raw row batches into one Parquet file with raw and typed columns."""
+    loc.makedirs("")  # refuses a read-only location
+    schema = decoder.schema.with_metadata({k.encode(): v.encode() for k, v in metadata.items()})
+    stream = DigestingIterator(batches)
+    undecoded = 0
+    first_error: str | None = None
+    handle, tmp = _open_target(loc, rel)
+    sink = _HashingWriter(handle)
+    try:
+        writer = pq.ParquetWriter(
+            sink, schema, compression=PARQUET_COMPRESSION, use_dictionary=[f.name for f in schema if f.name not in ("key", "value")],
+        )
+        try:
+            for batch in stream:
+                if batch.num_rows == 0:
+                    continue
+                out, error = decoder.decode(batch)
+                if error is not None:
+                    undecoded += batch.num_rows
+                    first_error = first_error or error
+                writer.write_batch(out)
+        finally:
+            writer.close()
+        handle.flush()
+        if tmp is not None:
+            os.fsync(handle.fileno())
+        handle.close()
+        if tmp is not None:
+            os.replace(tmp, loc.path(rel))
+            tmp = None
+    finally:
+        if not handle.closed:
+            handle.close()
+        if tmp is not None and os.path.exists(tmp):
+            os.remove(tmp)
+    return WrittenData(rel, sink.size, sink.sha256.hexdigest(), stream.digest, stream.key_bytes, stream.value_bytes, undecoded, first_error)
+
+
+def copy_verbatim(src: Location, rel: str, archive: Location) -> ArchivedFile:
+    """Copy one checkpoint metadata file byte for byte into ``checkpoint/`` of the archive."""
+    data = src.read_bytes(rel)
+    dest = checkpoint_rel(rel)
+    archive.write_bytes(dest, data)
+    return ArchivedFile(dest, len(data), hashlib.sha256(data).hexdigest())
+
+
+def write_manifest(archive: Location, manifest: Manifest) -> int:
+    """Write ``manifest.json`` (the archive's commit point); returns its size."""
+    data = manifest_text(manifest).encode("utf-8")
+    archive.write_bytes(MANIFEST_NAME, data)
+    return len(data)

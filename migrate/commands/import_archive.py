@@ -1,0 +1,358 @@
+"""``stateshift import ARCHIVE DST --to PROVIDER``: rebuild a full checkpoint from an archive.
+
+Order of work, chosen so that DST is never usable before it is proven:
+
+1. check the archive: the manifest's own seal, then every file it lists (size, SHA-256) and that
+   no unlisted file exists; the first problem is refused with one line naming the file, before
+   anything is written;
+2. refuse an unsafe or non-empty DST (``--overwrite`` replaces it) and mark it incomplete;
+3. per store partition: stream the raw ``key``/``value`` columns of its Parquet file into the
+   target provider's writer, read the written version back with our own reader, and compare
+   both digests with the manifest;
+4. copy the archived metadata files (operator metadata, schemas, sources), write the offsets
+   entries rewritten to name the target provider, the commits, and last ``metadata`` (with
+   ``--new-query-id``: a fresh random query id).
+
+With ``--dry-run`` the archive is still checked, then the plan is printed and nothing is written.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import re
+import uuid
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+from ..archive.manifest import CHECKPOINT_DIR, MANIFEST_NAME, DataFile, Manifest
+from ..archive.reader import check_archive, load_manifest, read_rows
+from ..checkpoint.logs import (
+    PROVIDER_CONF,
+    format_offsets,
+    parse_offsets,
+    parse_query_metadata,
+    with_conf,
+)
+from ..digest import Digest, DigestingIterator, digest_batches
+from ..errors import CorruptInput, UsageError, VerificationFailed
+from ..providers import class_name_for, provider_for
+from ..providers.base import ReadContext, StoreDir, WriteContext, WrittenFile
+from ..storage import Location
+from .common import guard_target, prepare_target, run_tasks
+from .convert import _write_with_crc, target_names
+
+_OFFSET_FILE = re.compile(r"^offsets/(\d+)$")
+_OFFSET_CRC = re.compile(r"^offsets/\.(\d+)\.crc$")
+_LAST = ("metadata", ".metadata.crc")
+
+
+def store_rel(operator_id: int, store: str, partition: int) -> str:
+    """The checkpoint directory of one store partition (named stores in a subdirectory)."""
+    base = f"state/{operator_id}/{partition}"
+    return base if store == "default" else f"{base}/{store}"
+
+
+@dataclass(frozen=True)
+class ImportTask:
+    archive: Location
+    data_file: DataFile
+    target: StoreDir
+    provider: str
+    version: int
+    write_conf: dict[str, str]
+    num_cols_prefix_key: int = 0
+    write_crc: bool = True
+
+
+@dataclass(frozen=True)
+class ImportResult:
+    operator_id: int
+    store_name: str
+    partition: int
+    expected: Digest
+    source_digest: Digest  # as streamed out of the Parquet file
+    target_digest: Digest  # as read back from the written target
+    written: tuple[WrittenFile, ...] = ()
+
+    @property
+    def ok(self) -> bool:
+        return self.expected == self.source_digest == self.target_digest
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "operator": self.operator_id,
+            "store": self.store_name,
+            "partition": self.partition,
+            "rows": self.expected.rows,
+            "archive_digest": self.expected.hexdigest,
+            "read_digest": self.source_digest.hexdigest,
+            "target_digest": self.target_digest.hexdigest,
+            "verified": self.ok,
+            "written": [{"path": w.rel, "bytes": w.size} for w in self.written],
+        }
+
+
+def run_import_task(task: ImportTask) -> ImportResult:
+    """Write one store partition from its Parquet file and prove it by reading it back."""
+    p = provider_for(task.provider)
+    stream = DigestingIterator(read_rows(task.archive, task.data_file))
+    wctx = WriteContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, write_crc=task.write_crc)
+    written = p.write(task.target, task.version, stream, wctx)
+    for _ in stream:  # a writer that stopped early leaves rows unread: count them, so it shows
+        pass
+    rctx = ReadContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key)
+    back = digest_batches(p.read(task.target, task.version, rctx))
+    d = task.data_file
+    return ImportResult(d.operator, d.store, d.partition, d.digest, stream.digest, back, tuple(written))
+
+
+@dataclass
+class ImportReport:
+    archive: str
+    target: str
+    query_id: str
+    new_query_id: str | None
+    batch: int
+    state_version: int
+    source_provider: str
+    target_provider: str
+    dry_run: bool
+    checked_files: int = 0
+    checked_bytes: int = 0
+    partitions: list[dict[str, Any]] = field(default_factory=list)
+    files: list[dict[str, Any]] = field(default_factory=list)
+
+    @property
+    def rows(self) -> int:
+        return sum(int(p["rows"]) for p in self.partitions)
+
+    def to_json(self) -> dict[str, Any]:
+        changes = {}
+        if self.source_provider != self.target_provider:
+            changes[PROVIDER_CONF] = {"old": self.source_provider, "new": self.target_provider}
+        return {
+            "command": "import",
+            "dry_run": self.dry_run,
+            "archive": self.archive,
+            "target": self.target,
+            "query_id": self.query_id,
+            "new_query_id": self.new_query_id,
+            "batch": self.batch,
+            "state_version": self.state_version,
+            "source_provider": self.source_provider,
+            "target_provider": self.target_provider,
+            "conf_changes": changes,
+            "archive_check": {"files": self.checked_files, "bytes": self.checked_bytes, "ok": True},
+            "rows": self.rows,
+            "partitions": self.partitions,
+            "files": self.files,
+            "verified": (not self.dry_run) and all(p.get("verified") for p in self.partitions),
+        }
+
+
+@dataclass(frozen=True)
+class _Files:
+    """The archived checkpoint files sorted into the publish steps (checkpoint-relative paths)."""
+
+    early: tuple[str, ...]
+    offsets: tuple[tuple[str, int, bool], ...]  # (path, batch id, had a crc sidecar)
+    commits: tuple[str, ...]
+    last: tuple[str, ...]
+
+
+def _sort_files(manifest: Manifest) -> _Files:
+    prefix = CHECKPOINT_DIR + "/"
+    rels = [f.path[len(prefix):] for f in manifest.checkpoint_files]
+    crcs = {int(m.group(1)) for r in rels if (m := _OFFSET_CRC.match(r))}
+    early, offsets, commits, last = [], [], [], []
+    for rel in rels:
+        if (m := _OFFSET_FILE.match(rel)) is not None:
+            offsets.append((rel, int(m.group(1)), int(m.group(1)) in crcs))
+        elif _OFFSET_CRC.match(rel):
+            continue  # rewritten entries get a new sidecar
+        elif rel.startswith("commits/"):
+            commits.append(rel)
+        elif rel in _LAST:
+            last.append(rel)
+        else:
+            early.append(rel)
+    last.sort(key=_LAST.index)
+    return _Files(tuple(early), tuple(sorted(offsets, key=lambda o: o[1])), tuple(commits), tuple(last))
+
+
+def _archived(archive: Location, rel: str) -> bytes:
+    return archive.read_bytes(f"{CHECKPOINT_DIR}/{rel}")
+
+
+def _check_logs(archive: Location, manifest: Manifest, files: _Files) -> dict[str, str]:
+    """The pinned conf of the archived batch; refuses an archive whose logs do not hold that batch."""
+    where = archive.describe(MANIFEST_NAME)
+    if "metadata" not in files.last:
+        raise CorruptInput(f"archive keeps no {CHECKPOINT_DIR}/metadata (the query id file)", where)
+    if f"commits/{manifest.batch_id}" not in files.commits:
+        raise CorruptInput(f"archive keeps no commits entry for its batch {manifest.batch_id}", where)
+    if manifest.batch_id not in {b for _, b, _ in files.offsets}:
+        raise CorruptInput(f"archive keeps no offsets entry for its batch {manifest.batch_id}", where)
+    rel = f"offsets/{manifest.batch_id}"
+    entry = parse_offsets(_archived(archive, rel).decode("utf-8", "replace"), manifest.batch_id, archive.describe(f"{CHECKPOINT_DIR}/{rel}"))
+    return entry.conf
+
+
+def _new_metadata(archive: Location, new_id: str) -> bytes:
+    rel = f"{CHECKPOINT_DIR}/metadata"
+    meta = parse_query_metadata(archive.read_text(rel), archive.describe(rel))
+    meta["id"] = new_id
+    return (json.dumps(meta, separators=(",", ":"), ensure_ascii=False) + "\n").encode("utf-8")
+
+
+def _plan_files(files: _Files, target_class: str, new_query_id: bool) -> list[dict[str, Any]]:
+    plan = [{"path": r, "action": "copy"} for r in files.early]
+    plan += [{"path": r, "action": "rewrite", "change": f"{PROVIDER_CONF}={target_class}"} for r, _, _ in files.offsets]
+    plan += [{"path": r, "action": "copy"} for r in files.commits]
+    for r in files.last:
+        if new_query_id:
+            if r == "metadata":
+                plan.append({"path": r, "action": "write", "change": "new random query id"})
+        else:
+            plan.append({"path": r, "action": "copy"})
+    return plan
+
+
+def _publish(archive: Location, dst: Location, files: _Files, target_class: str, metadata: bytes | None) -> list[dict[str, Any]]:
+    out: list[dict[str, Any]] = []
+
+    def copy(rel: str) -> None:
+        data = _archived(archive, rel)
+        dst.write_bytes(rel, data)
+        out.append({"path": rel, "bytes": len(data), "action": "copy"})
+
+    for rel in files.early:
+        copy(rel)
+    for rel, batch, had_crc in files.offsets:
+        entry = parse_offsets(_archived(archive, rel).decode("utf-8"), batch, archive.describe(f"{CHECKPOINT_DIR}/{rel}"))
+        data = format_offsets(with_conf(entry, {PROVIDER_CONF: target_class})).encode("utf-8")
+        out += _write_with_crc(dst, rel, data, had_crc)
+    for rel in files.commits:
+        copy(rel)
+    if metadata is None:
+        for rel in files.last:  # the real metadata is the commit point; its sidecar follows
+            copy(rel)
+    else:
+        out += _write_with_crc(dst, "metadata", metadata, True)
+    return out
+
+
+def import_archive(
+    archive: Location,
+    dst: Location,
+    to: str,
+    *,
+    dry_run: bool = False,
+    new_query_id: bool = False,
+    overwrite: bool = False,
+    jobs: int = 1,
+    progress: Callable[[Any], None] = lambda r: None,
+    on_plan: Callable[[int], None] = lambda n: None,
+) -> ImportReport:
+    guard_target(archive, dst)
+    target_class = class_name_for(to)
+    target = provider_for(target_class)
+    manifest = load_manifest(archive)
+    checked = check_archive(archive, manifest)
+    files = _sort_files(manifest)
+    conf = _check_logs(archive, manifest, files)
+    report = ImportReport(
+        archive=archive.display, target=dst.display, query_id=manifest.query_id,
+        new_query_id=str(uuid.uuid4()) if new_query_id else None, batch=manifest.batch_id,
+        state_version=manifest.state_version, source_provider=manifest.provider_class, target_provider=target_class,
+        dry_run=dry_run, checked_files=len(manifest.all_paths()), checked_bytes=checked,
+    )
+    write_conf = {**conf, PROVIDER_CONF: target_class}
+    tasks = []
+    for d in manifest.data_files:
+        prefix = manifest.operator(d.operator).store(d.store).num_cols_prefix_key
+        rel = store_rel(d.operator, d.store, d.partition)
+        tasks.append(ImportTask(archive, d, StoreDir(dst, rel, d.operator, d.partition, d.store), target.name,
+                                manifest.state_version, write_conf, prefix, dst.is_local))
+    on_plan(len(tasks))
+    if dry_run:
+        for t in tasks:
+            d = t.data_file
+            report.partitions.append({
+                "operator": d.operator, "store": d.store, "partition": d.partition, "rows": d.rows,
+                "archive_digest": d.digest.hexdigest, "from": d.path,
+                "target_files": [f"{t.target.rel}/{n}" for n in target_names(target.name, manifest.state_version)],
+            })
+        report.files = _plan_files(files, target_class, new_query_id)
+        return report
+
+    prepare_target(dst, overwrite)
+    results: list[ImportResult] = run_tasks(tasks, run_import_task, jobs, progress)  # type: ignore[arg-type]
+    report.partitions = [r.to_json() for r in results]
+    bad = [r for r in results if not r.ok]
+    if bad:
+        r = bad[0]
+        raise VerificationFailed(
+            f"operator {r.operator_id} store {r.store_name} partition {r.partition} does not match the archive "
+            f"(archive {r.expected.rows} rows {r.expected.hexdigest}, read {r.source_digest.rows} rows "
+            f"{r.source_digest.hexdigest}, written {r.target_digest.rows} rows {r.target_digest.hexdigest}); "
+            f"{len(bad)} partition(s) differ; the target is left marked incomplete",
+            dst.display,
+        )
+    metadata = _new_metadata(archive, report.new_query_id) if report.new_query_id else None
+    report.files = _publish(archive, dst, files, target_class, metadata)
+    return report
+
+
+def render(report: ImportReport) -> str:
+    head = "plan: import (dry run, nothing written)" if report.dry_run else "imported"
+    identity = f"query {report.query_id}" + (f" -> new query id {report.new_query_id}" if report.new_query_id else "")
+    lines = [
+        f"{head} {report.archive}",
+        f"  into {report.target}",
+        f"  archive checked: {report.checked_files} file(s), {report.checked_bytes} bytes, sizes and SHA-256 match {MANIFEST_NAME}",
+        f"  {identity}, batch {report.batch} (state version {report.state_version})",
+        f"  provider {report.source_provider}",
+        f"        -> {report.target_provider}",
+    ]
+    if report.dry_run:
+        for p in report.partitions:
+            lines.append(f"  op {p['operator']} / {p['store']} / part {p['partition']}: {p['rows']} rows -> {', '.join(p['target_files'])}")
+        for f in report.files:
+            lines.append(f"  {f['action']:<7} {f['path']}" + (f"  ({f['change']})" if f.get("change") else ""))
+    else:
+        lines.append(f"  {len(report.partitions)} store partition(s), {report.rows} rows: written, read back, digests match the archive")
+        lines.append(f"  {len(report.files)} checkpoint file(s) written; metadata last")
+    return "\n".join(lines)
+
+
+def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
+    from ..providers import PROVIDER_NAMES
+
+    i = sub.add_parser("import", parents=[common], help="rebuild a checkpoint from an archive, on either provider")
+    i.add_argument("archive", metavar="ARCHIVE", help="archive written by 'stateshift export'; never written")
+    i.add_argument("target", metavar="DST", help="where to build the checkpoint (must be empty)")
+    i.add_argument("--to", required=True, metavar="PROVIDER", help=f"target provider: {' | '.join(PROVIDER_NAMES)} | <provider class>")
+    i.add_argument("--dry-run", action="store_true", help="check the archive, print the plan, write nothing")
+    i.add_argument("--new-query-id", action="store_true", help="give the restored checkpoint a fresh random query id (for clones)")
+    i.add_argument("--overwrite", action="store_true", help="replace a non-empty DST")
+    i.add_argument("--jobs", "-j", type=int, default=os.cpu_count() or 1, help="store partitions in parallel (default: cores)")
+    i.add_argument("--target-storage-option", action="append", default=[], metavar="KEY=VALUE", help="filesystem option for DST only")
+    i.set_defaults(run=run)
+
+
+def run(args: argparse.Namespace, ctx: Any) -> int:
+    if args.jobs < 1:
+        raise UsageError("--jobs must be at least 1")
+    archive = ctx.open(args.archive, readonly=True)
+    dst = ctx.open(args.target, readonly=args.dry_run, extra=args.target_storage_option)
+    report = import_archive(
+        archive, dst, args.to, dry_run=args.dry_run, new_query_id=args.new_query_id, overwrite=args.overwrite,
+        jobs=args.jobs, progress=ctx.progress.step, on_plan=ctx.progress.start,
+    )
+    ctx.progress.close()
+    ctx.emit(report.to_json(), render(report))
+    return 0
