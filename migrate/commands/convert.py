@@ -20,16 +20,15 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
+from .. import faults
 from ..checkpoint.files import conf_changes, rewritten_offsets, verbatim_files
+from ..checkpoint.liveness import changed_since, running_signs
 from ..checkpoint.model import Checkpoint, load_checkpoint
 from ..codecs.hadoop_crc import crc_name, make_crc
-from .. import faults
-from ..checkpoint.liveness import changed_since, running_signs
-from ..digest import Digest
 from ..errors import QueryMayBeRunning, VerificationFailed
-from . import journal
 from ..providers import class_name_for, provider_for
 from ..storage import Location
+from . import journal
 from .common import (
     PartitionResult,
     PartitionTask,
@@ -206,38 +205,30 @@ def run_journaled(
     progress: Callable[[PartitionResult], None],
 ) -> list[PartitionResult]:
     """Run partition tasks into ``dst`` with a resume journal; raise if any read-back differs."""
-    if resume:
-        state = journal.resume(dst, identity)
-    else:
-        prepare_target(dst, overwrite)
-        state = journal.start(dst, identity)
-    done: dict[str, PartitionResult] = {}
-    todo: list[PartitionTask] = []
-    for t in tasks:
-        k = journal.key(t.source.operator_id, t.source.store_name, t.source.partition)
-        recorded = state["partitions"].get(k)
-        if recorded is not None:
-            again = reverify_partition(t, Digest.from_json(recorded["digest"]))
-            if again is not None:
-                done[k] = again
-                progress(again)
-                continue
-        t.target.location.remove(t.target.rel, recursive=True)  # drop anything half-written
-        todo.append(t)
 
-    def finished(r: PartitionResult) -> None:
-        if r.ok:
-            state["partitions"][journal.key(r.operator_id, r.store_name, r.partition)] = {
-                "digest": r.source_digest.to_json(),
-                "files": [w.rel for w in r.written],
-            }
-            journal.save(dst, state)
-        progress(r)
-        faults.reached("partition-written")
+    def key_of(t: PartitionTask) -> str:
+        return journal.key(t.source.operator_id, t.source.store_name, t.source.partition)
 
-    for r in run_tasks(todo, run_partition, jobs, finished):
-        done[journal.key(r.operator_id, r.store_name, r.partition)] = r
-    results = [done[journal.key(t.source.operator_id, t.source.store_name, t.source.partition)] for t in tasks]
+    def result_key(r: PartitionResult) -> str:
+        return journal.key(r.operator_id, r.store_name, r.partition)
+
+    results, _ = journal.run_with_journal(
+        dst,
+        identity,
+        tasks,
+        key_of=key_of,
+        target_rel=lambda t: t.target.rel,
+        reverify=reverify_partition,
+        run=lambda todo, on_done: run_tasks(todo, run_partition, jobs, on_done),
+        result_key=result_key,
+        result_digest=lambda r: r.source_digest,
+        result_ok=lambda r: r.ok,
+        result_files=lambda r: [w.rel for w in r.written],
+        resume=resume,
+        overwrite=overwrite,
+        progress=progress,
+        prepare=prepare_target,
+    )
     bad = [r for r in results if not r.ok]
     if bad:
         r = bad[0]

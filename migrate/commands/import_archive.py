@@ -19,6 +19,7 @@ With ``--dry-run`` the archive is still checked, then the plan is printed and no
 from __future__ import annotations
 
 import argparse
+import hashlib
 import json
 import os
 import re
@@ -27,6 +28,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
+from .. import faults
 from ..archive.manifest import CHECKPOINT_DIR, MANIFEST_NAME, DataFile, Manifest
 from ..archive.reader import check_archive, load_manifest, read_rows
 from ..checkpoint.logs import (
@@ -37,10 +39,11 @@ from ..checkpoint.logs import (
     with_conf,
 )
 from ..digest import Digest, DigestingIterator, digest_batches
-from ..errors import CorruptInput, UsageError, VerificationFailed
+from ..errors import CorruptInput, StateshiftError, UsageError, VerificationFailed
 from ..providers import class_name_for, provider_for
 from ..providers.base import ReadContext, StoreDir, WriteContext, WrittenFile
 from ..storage import Location
+from . import journal
 from .common import guard_target, prepare_target, run_tasks
 from .convert import _write_with_crc, target_names
 
@@ -237,6 +240,7 @@ def _publish(archive: Location, dst: Location, files: _Files, target_class: str,
         out += _write_with_crc(dst, rel, data, had_crc)
     for rel in files.commits:
         copy(rel)
+    faults.reached("before-metadata")
     if metadata is None:
         for rel in files.last:  # the real metadata is the commit point; its sidecar follows
             copy(rel)
@@ -253,6 +257,7 @@ def import_archive(
     dry_run: bool = False,
     new_query_id: bool = False,
     overwrite: bool = False,
+    resume: bool = False,
     jobs: int = 1,
     progress: Callable[[Any], None] = lambda r: None,
     on_plan: Callable[[int], None] = lambda n: None,
@@ -289,8 +294,42 @@ def import_archive(
         report.files = _plan_files(files, target_class, new_query_id)
         return report
 
-    prepare_target(dst, overwrite)
-    results: list[ImportResult] = run_tasks(tasks, run_import_task, jobs, progress)  # type: ignore[arg-type]
+    identity = {
+        "command": "import",
+        "archive": archive.display,
+        "query_id": manifest.query_id,
+        "batch": manifest.batch_id,
+        "target_provider": target_class,
+        "manifest_sha256": hashlib.sha256(archive.read_bytes(MANIFEST_NAME)).hexdigest(),
+        "new_query_id": new_query_id,
+    }
+
+    def key_of(t: ImportTask) -> str:
+        return journal.key(t.data_file.operator, t.data_file.store, t.data_file.partition)
+
+    def result_key(r: ImportResult) -> str:
+        return journal.key(r.operator_id, r.store_name, r.partition)
+
+    results, state = journal.run_with_journal(
+        dst,
+        identity,
+        tasks,
+        key_of=key_of,
+        target_rel=lambda t: t.target.rel,
+        reverify=_reverify,
+        run=lambda todo, on_done: run_tasks(todo, run_import_task, jobs, on_done),  # type: ignore[arg-type]
+        result_key=result_key,
+        result_digest=lambda r: r.expected,
+        result_ok=lambda r: r.ok,
+        result_files=lambda r: [w.rel for w in r.written],
+        resume=resume,
+        overwrite=overwrite,
+        progress=progress,
+        prepare=prepare_target,
+    )
+    if report.new_query_id:  # a resumed clone keeps the identity its first attempt chose
+        report.new_query_id = state.setdefault("chosen_query_id", report.new_query_id)
+        journal.save(dst, state)
     report.partitions = [r.to_json() for r in results]
     bad = [r for r in results if not r.ok]
     if bad:
@@ -303,8 +342,29 @@ def import_archive(
             dst.display,
         )
     metadata = _new_metadata(archive, report.new_query_id) if report.new_query_id else None
+    faults.reached("before-logs")
     report.files = _publish(archive, dst, files, target_class, metadata)
+    journal.finish(dst)
     return report
+
+
+def _reverify(task: ImportTask, recorded: Digest) -> ImportResult | None:
+    """A partition an interrupted run wrote, if it still reads back with the archive's digest."""
+    d = task.data_file
+    if recorded != d.digest:
+        return None
+    p = provider_for(task.provider)
+    try:
+        listing = task.target.location.list_dir(task.target.rel)
+        if not listing:
+            return None
+        rctx = ReadContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, listing=listing)
+        back = digest_batches(p.read(task.target, task.version, rctx))
+    except StateshiftError:
+        return None
+    if back != d.digest:
+        return None
+    return ImportResult(d.operator, d.store, d.partition, d.digest, d.digest, back, ())
 
 
 def render(report: ImportReport) -> str:
@@ -339,6 +399,7 @@ def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
     i.add_argument("--dry-run", action="store_true", help="check the archive, print the plan, write nothing")
     i.add_argument("--new-query-id", action="store_true", help="give the restored checkpoint a fresh random query id (for clones)")
     i.add_argument("--overwrite", action="store_true", help="replace a non-empty DST")
+    i.add_argument("--resume", action="store_true", help="finish an interrupted import into DST, reusing verified partitions")
     i.add_argument("--jobs", "-j", type=int, default=os.cpu_count() or 1, help="store partitions in parallel (default: cores)")
     i.add_argument("--target-storage-option", action="append", default=[], metavar="KEY=VALUE", help="filesystem option for DST only")
     i.set_defaults(run=run)
@@ -351,6 +412,7 @@ def run(args: argparse.Namespace, ctx: Any) -> int:
     dst = ctx.open(args.target, readonly=args.dry_run, extra=args.target_storage_option)
     report = import_archive(
         archive, dst, args.to, dry_run=args.dry_run, new_query_id=args.new_query_id, overwrite=args.overwrite,
+        resume=args.resume,
         jobs=args.jobs, progress=ctx.progress.step, on_plan=ctx.progress.start,
     )
     ctx.progress.close()

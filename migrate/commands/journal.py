@@ -9,11 +9,17 @@ before it is skipped. The journal is deleted once the target is published.
 from __future__ import annotations
 
 import json
-from typing import Any
+from collections.abc import Callable
+from typing import Any, TypeVar
 
+from .. import faults
 from ..checkpoint.model import INCOMPLETE_PREFIX, JOURNAL_DIR
+from ..digest import Digest
 from ..errors import CorruptInput, UnsafeTarget
 from ..storage import Location
+
+T = TypeVar("T")
+R = TypeVar("R")
 
 JOURNAL = f"{JOURNAL_DIR}/journal.json"
 
@@ -32,7 +38,7 @@ def save(dst: Location, journal: dict[str, Any]) -> None:
     dst.write_bytes(JOURNAL, json.dumps(journal, indent=1, sort_keys=True).encode())
 
 
-def resume(dst: Location, identity: dict[str, Any]) -> dict[str, Any]:
+def resume_journal(dst: Location, identity: dict[str, Any]) -> dict[str, Any]:
     """The journal of an interrupted run into ``dst`` for the same source, or an error."""
     root = dst.list_dir("")
     if "metadata" not in root:
@@ -56,3 +62,57 @@ def resume(dst: Location, identity: dict[str, Any]) -> dict[str, Any]:
 
 def finish(dst: Location) -> None:
     dst.remove(JOURNAL_DIR, recursive=True)
+
+
+def run_with_journal(
+    dst: Location,
+    identity: dict[str, Any],
+    tasks: list[T],
+    *,
+    key_of: Callable[[T], str],
+    target_rel: Callable[[T], str],
+    reverify: Callable[[T, Digest], R | None],
+    run: Callable[[list[T], Callable[[R], None]], list[R]],
+    result_key: Callable[[R], str],
+    result_digest: Callable[[R], Digest],
+    result_ok: Callable[[R], bool],
+    result_files: Callable[[R], list[str]],
+    resume: bool,
+    overwrite: bool,
+    progress: Callable[[R], None],
+    prepare: Callable[[Location, bool], None],
+) -> tuple[list[R], dict[str, Any]]:
+    """Run per-partition tasks into ``dst`` keeping the journal; returns results in task order.
+
+    With ``resume``, a partition recorded in the journal is reused only if ``reverify`` reads it
+    back from the target with the recorded digest; every other partition's target directory is
+    removed (anything half-written goes) and the task runs again.
+    """
+    if resume:
+        state = resume_journal(dst, identity)
+    else:
+        prepare(dst, overwrite)
+        state = start(dst, identity)
+    done: dict[str, R] = {}
+    todo: list[T] = []
+    for t in tasks:
+        recorded = state["partitions"].get(key_of(t))
+        if recorded is not None:
+            again = reverify(t, Digest.from_json(recorded["digest"]))
+            if again is not None:
+                done[key_of(t)] = again
+                progress(again)
+                continue
+        dst.remove(target_rel(t), recursive=True)
+        todo.append(t)
+
+    def finished(r: R) -> None:
+        if result_ok(r):
+            state["partitions"][result_key(r)] = {"digest": result_digest(r).to_json(), "files": result_files(r)}
+            save(dst, state)
+        progress(r)
+        faults.reached("partition-written")
+
+    for r in run(todo, finished):
+        done[result_key(r)] = r
+    return [done[key_of(t)] for t in tasks], state

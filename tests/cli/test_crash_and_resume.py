@@ -86,3 +86,22 @@ def test_resume_refuses_a_finished_or_foreign_target(tmp_path):
     assert crashed.returncode == -9
     foreign = stateshift("convert", str(other), str(dst2), "--to", "rocksdb", "--force", "--resume")
     assert foreign.returncode == 6 and "different source" in foreign.stderr
+
+
+@pytest.mark.parametrize("point", ["file-written:3", "partition-written:1", "mid-file:6", "before-logs:1", "before-metadata:1"])
+def test_killed_import_is_unusable_then_resumes(tmp_path, point):
+    src = demo_copy("greenhouse_totals_hdfs", tmp_path)
+    archive = tmp_path / "archive"
+    assert stateshift("export", str(src), str(archive), "--force").returncode == 0
+    dst = tmp_path / "restored"
+    crashed = stateshift("import", str(archive), str(dst), "--to", "rocksdb", "-j", "1", "--new-query-id",
+                         env={"STATESHIFT_CRASH_AT": point})
+    assert crashed.returncode == -9, crashed.stderr
+    shown = stateshift("inspect", str(dst))
+    assert shown.returncode != 0 and "incomplete stateshift target" in shown.stderr
+    resumed = stateshift("import", str(archive), str(dst), "--to", "rocksdb", "-j", "1", "--new-query-id", "--resume")
+    assert resumed.returncode == 0, resumed.stderr
+    new_id = json.loads((dst / "metadata").read_text())["id"]
+    assert new_id != json.loads((src / "metadata").read_text())["id"]
+    assert not (dst / "_stateshift").exists()
+    assert stateshift("verify", str(src), str(dst)).returncode == 0
