@@ -24,6 +24,7 @@ from .. import faults
 from ..checkpoint.files import conf_changes, rewritten_offsets, verbatim_files
 from ..checkpoint.liveness import changed_since, running_signs
 from ..checkpoint.model import Checkpoint, load_checkpoint
+from ..checkpoint.schemas import check_schemas
 from ..codecs.hadoop_crc import crc_name, make_crc
 from ..errors import QueryMayBeRunning, VerificationFailed
 from ..providers import class_name_for, provider_for
@@ -129,6 +130,7 @@ def convert(
     target_class = class_name_for(to)
     target = provider_for(target_class)
     ckpt.provider  # an unknown source provider class raises Unsupported here
+    check_schemas(ckpt, verbatim_files(ckpt)[0])
     report = ConvertReport(
         source=src.display,
         target=dst.display,

@@ -103,7 +103,23 @@ def empty_directory(src):
     return "empty"
 
 
+def unreadable_schema_file(src):
+    f = _part(src) / "_metadata" / "schema"
+    _drop_crc(f)
+    f.write_bytes(f.read_bytes()[:40])
+    return "_metadata/schema"
+
+
+def garbage_schema_file(src):
+    f = _part(src) / "_metadata" / "schema"
+    _drop_crc(f)
+    f.write_bytes(b"\x00\x02v2\xff\xff\xff\xffnot a schema")
+    return "_metadata/schema"
+
+
 CASES = [
+    (unreadable_schema_file, CORRUPT),
+    (garbage_schema_file, CORRUPT),
     (truncated_delta, CORRUPT),
     (block_checksum_mismatch, CORRUPT),
     (crc_sidecar_mismatch, CORRUPT),
@@ -164,3 +180,76 @@ def test_an_incomplete_target_is_not_a_valid_source(tmp_path):
     assert r.returncode == -9
     again = stateshift("convert", str(dst), str(tmp_path / "x"), "--to", "rocksdb")
     assert again.returncode == CORRUPT and "incomplete stateshift target" in again.stderr
+
+
+def _newest_zip(src, p=0):
+    return max(_part(src, p).glob("*.zip"), key=lambda f: int(f.stem))
+
+
+def _sst_named_by_newest_zip(src):
+    import zipfile
+
+    z = _newest_zip(src)
+    meta = zipfile.ZipFile(z).read("metadata").decode().split("\n", 1)[1]
+    name = json.loads(meta)["sstFiles"][0]["dfsSstFileName"]
+    return _part(src) / "SSTs" / name
+
+
+def missing_sst(src):
+    sst = _sst_named_by_newest_zip(src)
+    _drop_crc(sst)
+    sst.unlink()
+    return sst.name
+
+
+def sst_size_differs(src):
+    sst = _sst_named_by_newest_zip(src)
+    _drop_crc(sst)
+    sst.write_bytes(sst.read_bytes() + b"\x00" * 9)
+    return sst.name
+
+
+def zip_entry_escapes(src):
+    import zipfile
+
+    z = _newest_zip(src)
+    _drop_crc(z)
+    members = {i.filename: zipfile.ZipFile(z).read(i) for i in zipfile.ZipFile(z).infolist()}
+    with zipfile.ZipFile(z, "w") as out:
+        for name, data in members.items():
+            out.writestr(name, data)
+        out.writestr("../../../escaped.txt", b"should never be written")
+    return z.name
+
+
+def zip_entry_absolute(src):
+    import zipfile
+
+    z = _newest_zip(src)
+    _drop_crc(z)
+    with zipfile.ZipFile(z, "a") as out:
+        out.writestr("/tmp/stateshift-absolute-escape.txt", b"should never be written")
+    return z.name
+
+
+ROCKS_CASES = [(missing_sst, CORRUPT), (sst_size_differs, CORRUPT), (zip_entry_escapes, CORRUPT), (zip_entry_absolute, CORRUPT)]
+
+
+@pytest.mark.parametrize("damage, code", ROCKS_CASES, ids=[c[0].__name__ for c in ROCKS_CASES])
+def test_bad_rocksdb_source_is_refused_cleanly(tmp_path, damage, code):
+    import pathlib
+
+    src = demo_copy("greenhouse_totals_rocksdb", tmp_path / "deep" / "er")
+    expected = damage(src)
+    before = tree_digest(src)
+    dst = tmp_path / "out"
+    r = stateshift("convert", str(src), str(dst), "--to", "hdfs")
+    assert r.returncode == code, (r.returncode, r.stderr)
+    lines = r.stderr.strip().splitlines()
+    assert len(lines) == 1 and expected in lines[0], r.stderr
+    assert tree_digest(src) == before
+    assert not list(tmp_path.rglob("escaped.txt"))
+    assert not pathlib.Path("/tmp/stateshift-absolute-escape.txt").exists()
+    if (dst / "metadata").exists():
+        with pytest.raises(json.JSONDecodeError):
+            json.loads((dst / "metadata").read_text())
