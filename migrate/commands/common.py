@@ -7,6 +7,7 @@ and compare. Tasks are plain picklable data so ``--jobs`` can run them in worker
 
 from __future__ import annotations
 
+import argparse
 import os
 from collections.abc import Callable, Iterable
 from concurrent.futures import ProcessPoolExecutor
@@ -16,7 +17,7 @@ from typing import Any
 
 from ..checkpoint.model import Checkpoint, StorePartition
 from ..digest import Digest, DigestingIterator, digest_batches
-from ..errors import StateshiftError, UnsafeTarget
+from ..errors import StateshiftError, UnsafeTarget, UsageError
 from ..providers import provider_for
 from ..providers.base import ReadContext, StoreDir, WriteContext, WrittenFile
 from ..storage import Location
@@ -135,22 +136,47 @@ def run_partition(task: PartitionTask) -> PartitionResult:
     )
 
 
-def reverify_partition(task: PartitionTask, expected: Digest) -> PartitionResult | None:
-    """Read back a partition an earlier run wrote; a result if it still matches, else None."""
-    dst = provider_for(task.target_provider)
+def read_back_digest(provider: str, target: StoreDir, version: int, conf: dict[str, str], prefix: int) -> Digest | None:
+    """Digest of what an earlier run left in a target store directory, or None if unreadable."""
     try:
-        listing = task.target.location.list_dir(task.target.rel)
+        listing = target.location.list_dir(target.rel)
         if not listing:
             return None
-        ctx = ReadContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, listing=listing)
-        back = digest_batches(dst.read(task.target, task.version, ctx))
+        ctx = ReadContext(conf=conf, num_cols_prefix_key=prefix, listing=listing)
+        return digest_batches(provider_for(provider).read(target, version, ctx))
     except StateshiftError:
         return None
+
+
+def reverify_partition(task: PartitionTask, expected: Digest) -> PartitionResult | None:
+    """Read back a partition an earlier run wrote; a result if it still matches, else None."""
+    back = read_back_digest(task.target_provider, task.target, task.version, task.write_conf, task.num_cols_prefix_key)
     if back != expected:
         return None
     return PartitionResult(
         task.source.operator_id, task.source.store_name, task.source.partition, expected, back, 0, 0, 0, ()
     )
+
+
+def add_target_arguments(parser: argparse.ArgumentParser, what: str) -> None:
+    """The options every command that builds a checkpoint shares."""
+    from ..providers import PROVIDER_NAMES
+
+    parser.add_argument("--to", required=True, metavar="PROVIDER", help=f"target provider: {' | '.join(PROVIDER_NAMES)} | <provider class>")
+    parser.add_argument("--overwrite", action="store_true", help="replace a non-empty DST")
+    parser.add_argument("--resume", action="store_true", help=f"finish an interrupted {what} into DST, reusing verified partitions")
+    add_jobs_argument(parser)
+    parser.add_argument("--target-storage-option", action="append", default=[], metavar="KEY=VALUE", help="filesystem option for DST only")
+
+
+def add_jobs_argument(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--jobs", "-j", type=int, default=os.cpu_count() or 1, help="store partitions in parallel (default: cores)")
+
+
+def checked_jobs(jobs: int) -> int:
+    if jobs < 1:
+        raise UsageError("--jobs must be at least 1")
+    return jobs
 
 
 def digest_partition(sp: StorePartition, provider: str, version: int, conf: dict[str, str], prefix: int) -> tuple[Digest, int]:

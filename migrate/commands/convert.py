@@ -15,7 +15,6 @@ With ``--dry-run`` steps 2-5 are replaced by printing the plan; nothing is writt
 from __future__ import annotations
 
 import argparse
-import os
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
@@ -33,6 +32,8 @@ from . import journal
 from .common import (
     PartitionResult,
     PartitionTask,
+    add_target_arguments,
+    checked_jobs,
     digest_partition,
     guard_target,
     prepare_target,
@@ -273,27 +274,19 @@ def publish(
 
 
 def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
-    from ..providers import PROVIDER_NAMES
-
     c = sub.add_parser("convert", parents=[common], help="rebuild a checkpoint on another state-store provider")
     c.add_argument("source", metavar="SRC", help="checkpoint to read (local path or fsspec URL); never written")
     c.add_argument("target", metavar="DST", help="where to build the converted checkpoint")
-    c.add_argument("--to", required=True, metavar="PROVIDER", help=f"target provider: {' | '.join(PROVIDER_NAMES)} | <provider class>")
     c.add_argument("--dry-run", action="store_true", help="print the plan as a diff and write nothing")
-    c.add_argument("--overwrite", action="store_true", help="replace a non-empty DST")
-    c.add_argument("--resume", action="store_true", help="finish an interrupted run into DST, reusing verified partitions")
     c.add_argument("--force", action="store_true", help="skip the running-query guard (only if you know the query is stopped)")
-    c.add_argument("--jobs", "-j", type=int, default=os.cpu_count() or 1, help="store partitions in parallel (default: cores)")
-    c.add_argument("--target-storage-option", action="append", default=[], metavar="KEY=VALUE", help="filesystem option for DST only")
+    add_target_arguments(c, "conversion")
     c.set_defaults(run=run)
 
 
 def run(args: argparse.Namespace, ctx: Any) -> int:
-    from ..errors import UsageError
     from .render import render_convert
 
-    if args.jobs < 1:
-        raise UsageError("--jobs must be at least 1")
+    checked_jobs(args.jobs)
     src = ctx.open(args.source, readonly=True)
     dst = ctx.open(args.target, readonly=args.dry_run, extra=args.target_storage_option)
     report = convert(

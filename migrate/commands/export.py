@@ -19,7 +19,6 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
-import os
 import re
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -52,7 +51,7 @@ from ..errors import UnsafeTarget, UsageError
 from ..providers import provider_for
 from ..providers.base import ReadContext, StoreDir
 from ..storage import Location
-from .common import guard_target, run_tasks
+from .common import add_jobs_argument, checked_jobs, guard_target, run_tasks
 from .convert import refuse_if_running
 
 _LOG_FILE = re.compile(r"^(offsets|commits)/\.?(\d+)(\.crc)?$")
@@ -343,7 +342,7 @@ def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
                    help="state version to export (default: the latest consistent one); needs a commit for batch V-1")
     e.add_argument("--overwrite", action="store_true", help="replace a non-empty ARCHIVE")
     e.add_argument("--force", action="store_true", help="skip the running-query guard (only if you know the query is stopped)")
-    e.add_argument("--jobs", "-j", type=int, default=os.cpu_count() or 1, help="store partitions in parallel (default: cores)")
+    add_jobs_argument(e)
     e.add_argument("--target-storage-option", action="append", default=[], metavar="KEY=VALUE", help="filesystem option for ARCHIVE only")
     e.set_defaults(run=run)
 
@@ -351,8 +350,7 @@ def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace, ctx: Any) -> int:
     import sys
 
-    if args.jobs < 1:
-        raise UsageError("--jobs must be at least 1")
+    checked_jobs(args.jobs)
     src = ctx.open(args.source, readonly=True)
     archive = ctx.open(args.archive, readonly=False, extra=args.target_storage_option)
     report = export(src, archive, version=args.version, overwrite=args.overwrite, force=args.force, jobs=args.jobs,

@@ -21,7 +21,6 @@ from __future__ import annotations
 import argparse
 import hashlib
 import json
-import os
 import re
 import uuid
 from collections.abc import Callable
@@ -39,12 +38,19 @@ from ..checkpoint.logs import (
     with_conf,
 )
 from ..digest import Digest, DigestingIterator, digest_batches
-from ..errors import CorruptInput, StateshiftError, UsageError, VerificationFailed
+from ..errors import CorruptInput, VerificationFailed
 from ..providers import class_name_for, provider_for
 from ..providers.base import ReadContext, StoreDir, WriteContext, WrittenFile
 from ..storage import Location
 from . import journal
-from .common import guard_target, prepare_target, run_tasks
+from .common import (
+    add_target_arguments,
+    checked_jobs,
+    guard_target,
+    prepare_target,
+    read_back_digest,
+    run_tasks,
+)
 from .convert import _write_with_crc, target_names
 
 _OFFSET_FILE = re.compile(r"^offsets/(\d+)$")
@@ -353,15 +359,7 @@ def _reverify(task: ImportTask, recorded: Digest) -> ImportResult | None:
     d = task.data_file
     if recorded != d.digest:
         return None
-    p = provider_for(task.provider)
-    try:
-        listing = task.target.location.list_dir(task.target.rel)
-        if not listing:
-            return None
-        rctx = ReadContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, listing=listing)
-        back = digest_batches(p.read(task.target, task.version, rctx))
-    except StateshiftError:
-        return None
+    back = read_back_digest(task.provider, task.target, task.version, task.write_conf, task.num_cols_prefix_key)
     if back != d.digest:
         return None
     return ImportResult(d.operator, d.store, d.partition, d.digest, d.digest, back, ())
@@ -390,24 +388,17 @@ def render(report: ImportReport) -> str:
 
 
 def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
-    from ..providers import PROVIDER_NAMES
-
     i = sub.add_parser("import", parents=[common], help="rebuild a checkpoint from an archive, on either provider")
     i.add_argument("archive", metavar="ARCHIVE", help="archive written by 'stateshift export'; never written")
     i.add_argument("target", metavar="DST", help="where to build the checkpoint (must be empty)")
-    i.add_argument("--to", required=True, metavar="PROVIDER", help=f"target provider: {' | '.join(PROVIDER_NAMES)} | <provider class>")
     i.add_argument("--dry-run", action="store_true", help="check the archive, print the plan, write nothing")
     i.add_argument("--new-query-id", action="store_true", help="give the restored checkpoint a fresh random query id (for clones)")
-    i.add_argument("--overwrite", action="store_true", help="replace a non-empty DST")
-    i.add_argument("--resume", action="store_true", help="finish an interrupted import into DST, reusing verified partitions")
-    i.add_argument("--jobs", "-j", type=int, default=os.cpu_count() or 1, help="store partitions in parallel (default: cores)")
-    i.add_argument("--target-storage-option", action="append", default=[], metavar="KEY=VALUE", help="filesystem option for DST only")
+    add_target_arguments(i, "import")
     i.set_defaults(run=run)
 
 
 def run(args: argparse.Namespace, ctx: Any) -> int:
-    if args.jobs < 1:
-        raise UsageError("--jobs must be at least 1")
+    checked_jobs(args.jobs)
     archive = ctx.open(args.archive, readonly=True)
     dst = ctx.open(args.target, readonly=args.dry_run, extra=args.target_storage_option)
     report = import_archive(
