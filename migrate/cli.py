@@ -120,12 +120,10 @@ def _run(args: argparse.Namespace) -> int:
 def main(argv: list[str] | None = None) -> int:
     parser = _parser()
     args = parser.parse_args(argv)
-    secrets = secret_values(parse_storage_options(getattr(args, "storage_option", []) or []))
+    secrets: list[str] = []
     try:
-        secrets += secret_values(parse_storage_options(getattr(args, "target_storage_option", []) or []))
-    except StateshiftError:
-        pass
-    try:
+        for name in ("storage_option", "target_storage_option"):
+            secrets += secret_values(parse_storage_options(getattr(args, name, []) or []))
         return _run(args)
     except StateshiftError as exc:
         print(f"stateshift: error: {mask_text(str(exc), secrets)}", file=sys.stderr)

@@ -5,14 +5,27 @@ every path the rest of the tool passes in is relative to that root and uses ``/`
 
 What the format layers need, and nothing more:
 
-* ``list_dir(rel)``: one listing request per directory (object stores charge per request). The
-  result is a dict ``name -> Entry`` so callers never probe files one by one.
-* ``read_bytes(rel)`` / ``open_read(rel)``: whole-file and streaming reads.
+* ``list_dir(rel)``: the children of one directory from one listing request (object stores charge
+  per request; on S3 a "directory" is a key prefix, listed with a delimiter). The result is a dict
+  ``name -> Entry`` so callers never probe files one by one. Listings are kept by the filesystem
+  from the last :func:`open_location` on (which empties the cache) and dropped by the
+  filesystem itself when this process writes below them; ``refresh=True`` asks the store again,
+  for callers that watch for changes made by someone else (the running-query guard).
+* ``read_bytes(rel)`` / ``open_read(rel)``: whole-file (one GET on object stores) and streaming
+  reads.
 * ``write_bytes(rel, data)``: write a whole file. On local disk it is written to a temporary name
-  and renamed, so a reader never sees half a file; on object stores a PUT is atomic already.
-* ``put_file(local, rel)``: upload a local file (RocksDB SST files are built on local disk).
+  and renamed, so a reader never sees half a file; on object stores it is one PUT, atomic already.
+* ``put_file(local, rel)`` / ``get_file(rel, local)``: upload and download one file (RocksDB SST
+  files are built and read on local disk).
+* ``remove(rel)``: one delete request; a missing file is not an error.
 
 A Location opened with ``readonly=True`` refuses every write: the source is never written.
+
+Credentials: storage options and URLs can carry secrets. ``Location.display`` / ``describe`` are
+the only names shown to people; every error raised here is one line, names the masked path and has
+the location's secrets replaced by ``***`` (see :func:`mask_text`). A secret in a URL that the
+filesystem would not consume (``s3://KEY:SECRET@bucket/...``) is refused rather than sent on as part
+of a bucket name.
 """
 
 from __future__ import annotations
@@ -21,20 +34,37 @@ import os
 import re
 import uuid
 from dataclasses import dataclass, field
-from typing import IO, Any
-from urllib.parse import urlsplit, urlunsplit
+from typing import IO, Any, NoReturn
+from urllib.parse import parse_qsl, unquote, urlsplit, urlunsplit
 
 import fsspec
 
 from . import faults
 from .errors import CorruptInput, StateshiftError, UsageError
 
-_SECRET_KEYS = re.compile(r"(secret|password|token|key|credential|signature|sas|sig)", re.IGNORECASE)
+# The error for a storage request that failed for a reason other than a missing file (unreachable
+# endpoint, access denied, throttling). Exit code 2: it is almost always a wrong option value.
+StorageFailure = UsageError
+
+_SECRET_WORDS = "secret|password|passwd|token|key|credential|signature|sas|sig"
+_SECRET_KEYS = re.compile(rf"({_SECRET_WORDS})", re.IGNORECASE)
+_NOT_SECRET_KEYS = {"key_prefix"}
 _QUERY_SECRET = re.compile(
-    r"((?:[A-Za-z0-9_.-]*(?:secret|password|token|key|credential|signature|sig|sas)[A-Za-z0-9_.-]*)=)[^&\s]+",
+    rf"((?:[A-Za-z0-9_.-]*(?:{_SECRET_WORDS})[A-Za-z0-9_.-]*)=)[^&\s]+",
     re.IGNORECASE,
 )
+# ``scheme://user[:password]@`` anywhere in free text (error messages quote endpoint URLs)
+_URL_USERINFO = re.compile(r"\b([A-Za-z][A-Za-z0-9+.-]*://)[^/\s@'\"<>]+@")
 MASK = "***"
+
+# Object stores: no real directories (a write needs no parent; "making" one would cost a request,
+# or on s3fs create a bucket), and a tree is every key below a prefix. Local disk is handled apart;
+# any other filesystem gets the generic fsspec calls.
+_OBJECT_STORES = {"s3", "s3a", "gs", "gcs", "abfs", "abfss", "az"}
+
+
+def _is_secret_key(key: str) -> bool:
+    return bool(_SECRET_KEYS.search(key)) and key.lower() not in _NOT_SECRET_KEYS
 
 
 def mask_url(url: str) -> str:
@@ -52,34 +82,61 @@ def mask_url(url: str) -> str:
     return urlunsplit((parts.scheme, netloc, parts.path, query, parts.fragment))
 
 
+def url_secrets(url: str) -> list[str]:
+    """The secret parts of a URL: the user info and secret-looking query values (raw and decoded)."""
+    if "://" not in url:
+        return []
+    try:
+        parts = urlsplit(url)
+        user, password = parts.username, parts.password
+    except ValueError:
+        return []
+    found: list[str] = []
+    if password:
+        found += [password, unquote(password)]
+        if user:  # with a password, the user part is an access key id: keep it private too
+            found += [user, unquote(user)]
+    for k, v in parse_qsl(parts.query, keep_blank_values=False):
+        if _is_secret_key(k):
+            found.append(v)
+    for m in _QUERY_SECRET.finditer(parts.query):  # the raw (still percent-encoded) form
+        found.append(m.group(0)[len(m.group(1)) :])
+    return [s for s in dict.fromkeys(found) if s]
+
+
 def mask_options(options: dict[str, Any]) -> dict[str, Any]:
     """Storage options with the values of secret-looking keys replaced by ``***``."""
     out: dict[str, Any] = {}
     for k, v in options.items():
         if isinstance(v, dict):
             out[k] = mask_options(v)
-        elif _SECRET_KEYS.search(k) and k.lower() not in {"key_prefix"}:
+        elif _is_secret_key(k):
             out[k] = MASK
+        elif isinstance(v, str) and "://" in v:
+            out[k] = mask_url(v)  # an endpoint URL with user info
         else:
             out[k] = v
     return out
 
 
 def mask_text(text: str, secrets: list[str]) -> str:
-    """Replace every literal secret value in free text (error messages, logs)."""
+    """Replace every literal secret value in free text (error messages, logs), and the user info of
+    every URL in it."""
     for s in sorted((s for s in secrets if s and len(s) >= 4), key=len, reverse=True):
         text = text.replace(s, MASK)
-    return text
+    return _URL_USERINFO.sub(lambda m: m.group(1) + MASK + "@", text)
 
 
 def secret_values(options: dict[str, Any]) -> list[str]:
-    """The values of secret-looking storage options, for :func:`mask_text`."""
+    """The values of secret-looking storage options (and secrets inside URL values), for :func:`mask_text`."""
     found: list[str] = []
     for k, v in options.items():
         if isinstance(v, dict):
             found += secret_values(v)
-        elif _SECRET_KEYS.search(k) and isinstance(v, str):
+        elif isinstance(v, str) and _is_secret_key(k):
             found.append(v)
+        elif isinstance(v, str) and "://" in v:
+            found += url_secrets(v)
     return found
 
 
@@ -87,12 +144,14 @@ def parse_storage_options(pairs: list[str]) -> dict[str, Any]:
     """``KEY=VALUE`` strings from the command line into fsspec storage options.
 
     ``a.b=c`` nests (``{"a": {"b": "c"}}``, for ``client_kwargs.endpoint_url=...``); the values
-    ``true``/``false`` and integers are converted.
+    ``true``/``false`` and integers are converted. Error messages never repeat a value.
     """
     options: dict[str, Any] = {}
-    for pair in pairs:
+    for number, pair in enumerate(pairs, start=1):
         if "=" not in pair:
-            raise UsageError(f"--storage-option {pair!r} is not KEY=VALUE")
+            # the text may be a secret with its '=' forgotten: show it only when it cannot be one
+            shown = repr(pair) if re.fullmatch(r"[A-Za-z0-9_.-]{1,32}", pair) and not _is_secret_key(pair) else "(text not shown)"
+            raise UsageError(f"storage option #{number} {shown} is not KEY=VALUE (a.b=c nests)")
         key, value = pair.split("=", 1)
         typed: Any = value
         if value.lower() in ("true", "false"):
@@ -102,7 +161,10 @@ def parse_storage_options(pairs: list[str]) -> dict[str, Any]:
         target = options
         *parents, leaf = key.split(".")
         for p in parents:
-            target = target.setdefault(p, {})
+            nxt = target.setdefault(p, {})
+            if not isinstance(nxt, dict):
+                raise UsageError(f"storage option {key}=...: {p} is already set to a plain value")
+            target = nxt
         target[leaf] = typed
     return options
 
@@ -131,6 +193,11 @@ def _mtime(info: dict[str, Any]) -> float | None:
     return None
 
 
+def _protocols(fs: Any) -> tuple[str, ...]:
+    protocol = fs.protocol
+    return tuple(protocol) if isinstance(protocol, (tuple, list)) else (protocol,)
+
+
 @dataclass(frozen=True)
 class Location:
     """A root URL on one fsspec filesystem."""
@@ -141,15 +208,25 @@ class Location:
     readonly: bool = True
     options: dict[str, Any] = field(default_factory=dict, compare=False, repr=False)
 
+    def __repr__(self) -> str:  # never the raw URL: it may carry credentials
+        return f"Location({self.display!r}, readonly={self.readonly})"
+
     @property
     def display(self) -> str:
         return mask_url(self.url)
 
     @property
     def is_local(self) -> bool:
-        protocol = self.fs.protocol
-        names = protocol if isinstance(protocol, (tuple, list)) else (protocol,)
+        names = _protocols(self.fs)
         return "file" in names or "local" in names
+
+    @property
+    def _object_store(self) -> bool:
+        return any(p in _OBJECT_STORES for p in _protocols(self.fs))
+
+    def secrets(self) -> list[str]:
+        """Literal secret values this location was opened with (for masking free text)."""
+        return secret_values(self.options) + url_secrets(self.url)
 
     def path(self, rel: str = "") -> str:
         rel = rel.strip("/")
@@ -160,45 +237,68 @@ class Location:
         base = self.display.rstrip("/")
         return f"{base}/{rel.strip('/')}" if rel else base
 
-    def child(self, rel: str, readonly: bool | None = None) -> "Location":
+    def child(self, rel: str, readonly: bool | None = None) -> Location:
         ro = self.readonly if readonly is None else readonly
         return Location(self.fs, self.path(rel), self.describe(rel), ro, self.options)
 
+    def _fail(self, exc: BaseException, rel: str, action: str) -> NoReturn:
+        """Raise the one-line, credential-free error for a failed storage request."""
+        where = self.describe(rel)
+        if isinstance(exc, PermissionError):
+            raise StorageFailure(f"access denied while trying to {action} (check the credentials and permissions)", where) from exc
+        detail = mask_text(" ".join(str(exc).split()), self.secrets())[:300]
+        raise StorageFailure(
+            f"storage request failed while trying to {action}: {type(exc).__name__}: {detail or 'no details'} "
+            "(check the endpoint, network and storage options)",
+            where,
+        ) from exc
+
     # ---------------------------------------------------------------- reading
-    def list_dir(self, rel: str = "") -> dict[str, Entry]:
-        """Children of a directory in one request; an absent directory lists as empty."""
+    def list_dir(self, rel: str = "", refresh: bool = False) -> dict[str, Entry]:
+        """Children of a directory in one request; an absent directory lists as empty.
+
+        ``refresh=True`` ignores the filesystem's listing cache (to see changes made by others).
+        """
+        target = self.path(rel)
         try:
-            infos = self.fs.ls(self.path(rel), detail=True)
-        except FileNotFoundError:
+            if refresh:
+                self.fs.invalidate_cache(target)
+            infos = self.fs.ls(target, detail=True)
+        except (FileNotFoundError, NotADirectoryError):
             return {}
-        except NotADirectoryError:
-            return {}
+        except Exception as exc:  # noqa: BLE001 - any driver error becomes one masked line
+            self._fail(exc, rel, "list this directory")
         out: dict[str, Entry] = {}
-        base = self.path(rel).rstrip("/")
+        base = target.rstrip("/")
         for info in infos:
             full = info["name"].rstrip("/")
             name = full.rsplit("/", 1)[-1]
-            if full == base or not name:
+            if full == base or not name:  # the directory itself, or an S3 "dir/" marker object
                 continue
-            out[name] = Entry(
-                name=name,
-                size=int(info.get("size") or 0),
-                is_dir=info.get("type") == "directory",
-                mtime=_mtime(info),
-            )
+            is_dir = info.get("type") == "directory"
+            if name in out and out[name].is_dir != is_dir:
+                is_dir = True  # a key "x" and a prefix "x/" side by side: it is a directory
+            out[name] = Entry(name=name, size=int(info.get("size") or 0), is_dir=is_dir, mtime=_mtime(info))
         return out
 
     def exists(self, rel: str = "") -> bool:
-        return bool(self.fs.exists(self.path(rel)))
+        try:
+            return bool(self.fs.exists(self.path(rel)))
+        except Exception as exc:  # noqa: BLE001
+            self._fail(exc, rel, "check that it exists")
 
     def read_bytes(self, rel: str) -> bytes:
+        """The whole file, from one request (``cat_file``: no size probe first)."""
+        # s3fs asks for the size first (a HEAD) unless it reads with one connection
+        kwargs = {"max_concurrency": 1} if "s3" in _protocols(self.fs) else {}
         try:
-            with self.fs.open(self.path(rel), "rb") as f:
-                return f.read()
+            return self.fs.cat_file(self.path(rel), **kwargs)
         except FileNotFoundError as exc:
             raise CorruptInput("file is missing", self.describe(rel)) from exc
         except IsADirectoryError as exc:
             raise CorruptInput("expected a file, found a directory", self.describe(rel)) from exc
+        except Exception as exc:  # noqa: BLE001
+            self._fail(exc, rel, "read this file")
 
     def read_text(self, rel: str) -> str:
         data = self.read_bytes(rel)
@@ -212,13 +312,19 @@ class Location:
             return self.fs.open(self.path(rel), "rb")
         except FileNotFoundError as exc:
             raise CorruptInput("file is missing", self.describe(rel)) from exc
+        except IsADirectoryError as exc:
+            raise CorruptInput("expected a file, found a directory", self.describe(rel)) from exc
+        except Exception as exc:  # noqa: BLE001
+            self._fail(exc, rel, "open this file")
 
     def get_file(self, rel: str, local_path: str) -> None:
-        """Download one file to local disk."""
+        """Download one file to local disk (one GET on object stores)."""
         try:
             self.fs.get_file(self.path(rel), local_path)
         except FileNotFoundError as exc:
             raise CorruptInput("file is missing", self.describe(rel)) from exc
+        except Exception as exc:  # noqa: BLE001
+            self._fail(exc, rel, "download this file")
 
     # ---------------------------------------------------------------- writing
     def _check_writable(self) -> None:
@@ -226,68 +332,148 @@ class Location:
             raise StateshiftError(f"internal error: refusing to write to read-only {self.display}")
 
     def makedirs(self, rel: str = "") -> None:
+        """Make a directory where directories exist (local disk); nothing on object stores."""
         self._check_writable()
-        if self.is_local:
-            os.makedirs(self.path(rel), exist_ok=True)
+        try:
+            if self.is_local:
+                os.makedirs(self.path(rel), exist_ok=True)
+            elif not self._object_store:
+                self.fs.makedirs(self.path(rel), exist_ok=True)
+        except Exception as exc:  # noqa: BLE001
+            self._fail(exc, rel, "create this directory")
+
+    def _parent_for_write(self, rel: str) -> None:
+        if not self.is_local and not self._object_store:
+            self.fs.makedirs(os.path.dirname(self.path(rel)), exist_ok=True)
 
     def write_bytes(self, rel: str, data: bytes) -> None:
-        """Write a whole file; on local disk through a temporary name and a rename."""
+        """Write a whole file; on local disk through a temporary name and a rename, else one PUT."""
         self._check_writable()
         target = self.path(rel)
-        if self.is_local:
-            directory = os.path.dirname(target)
-            os.makedirs(directory, exist_ok=True)
-            tmp = os.path.join(directory, f".stateshift-{uuid.uuid4().hex}.tmp")
-            with open(tmp, "wb") as f:
-                half = len(data) // 2
-                f.write(data[:half])
+        try:
+            if self.is_local:
+                directory = os.path.dirname(target)
+                os.makedirs(directory, exist_ok=True)
+                tmp = os.path.join(directory, f".stateshift-{uuid.uuid4().hex}.tmp")
+                with open(tmp, "wb") as f:
+                    half = len(data) // 2
+                    f.write(data[:half])
+                    faults.reached("mid-file")
+                    f.write(data[half:])
+                    f.flush()
+                    os.fsync(f.fileno())
+                os.replace(tmp, target)
+            else:
+                # one request; a PUT is all-or-nothing, so "mid-file" means "before the PUT" here
                 faults.reached("mid-file")
-                f.write(data[half:])
-                f.flush()
-                os.fsync(f.fileno())
-            os.replace(tmp, target)
-        else:
-            with self.fs.open(target, "wb") as f:
-                f.write(data)
+                self._parent_for_write(rel)
+                self.fs.pipe_file(target, data)
+        except StateshiftError:
+            raise
+        except Exception as exc:  # noqa: BLE001
+            self._fail(exc, rel, "write this file")
         faults.reached("file-written")
 
     def put_file(self, local_path: str, rel: str) -> None:
+        """Upload one local file (one PUT up to the driver's multipart threshold)."""
         self._check_writable()
         target = self.path(rel)
-        if self.is_local:
-            directory = os.path.dirname(target)
-            os.makedirs(directory, exist_ok=True)
-            tmp = os.path.join(directory, f".stateshift-{uuid.uuid4().hex}.tmp")
-            with open(local_path, "rb") as src, open(tmp, "wb") as dst:
-                while chunk := src.read(1 << 20):
-                    dst.write(chunk)
-                dst.flush()
-                os.fsync(dst.fileno())
-            os.replace(tmp, target)
-        else:
-            self.fs.put_file(local_path, target)
+        try:
+            if self.is_local:
+                directory = os.path.dirname(target)
+                os.makedirs(directory, exist_ok=True)
+                tmp = os.path.join(directory, f".stateshift-{uuid.uuid4().hex}.tmp")
+                with open(local_path, "rb") as src, open(tmp, "wb") as dst:
+                    while chunk := src.read(1 << 20):
+                        dst.write(chunk)
+                    dst.flush()
+                    os.fsync(dst.fileno())
+                os.replace(tmp, target)
+            else:
+                self._parent_for_write(rel)
+                self.fs.put_file(local_path, target)
+        except Exception as exc:  # noqa: BLE001
+            self._fail(exc, rel, "upload this file")
 
     def remove(self, rel: str, recursive: bool = False) -> None:
+        """Delete a file (one request, no existence probe), or a whole tree with ``recursive``."""
         self._check_writable()
+        target = self.path(rel)
         try:
-            self.fs.rm(self.path(rel), recursive=recursive)
+            if recursive and self._object_store:
+                self._remove_tree(target)
+            elif recursive:
+                self.fs.rm(target, recursive=True)
+            else:
+                self.fs.rm_file(target)
         except FileNotFoundError:
             pass
+        except Exception as exc:  # noqa: BLE001
+            self._fail(exc, rel, "delete this")
+
+    def _remove_tree(self, target: str) -> None:
+        """Object stores: the key ``target`` and every key below ``target/`` from ONE listing (of
+        the parent, with the name as stem; the generic recursive rm probes with HEAD requests
+        first), then bulk deletes of up to 1000 keys per request."""
+        parent, _, stem = target.rpartition("/")
+        found = self.fs.find(parent, prefix=stem) if parent else self.fs.find(target)
+        doomed = sorted({p for p in found if p.rstrip("/") == target or p.startswith(target + "/")})
+        if doomed and "s3" in _protocols(self.fs):
+            self._s3_bulk_delete(doomed)
+        elif doomed:
+            self.fs.rm(doomed)
+        for p in doomed:  # drop cached listings of every directory that lost a child
+            self.fs.invalidate_cache(p.rstrip("/").rpartition("/")[0])
+        self.fs.invalidate_cache(target)
+
+    def _s3_bulk_delete(self, paths: list[str]) -> None:
+        """Delete exact keys, "dir/" marker objects included (s3fs strips their trailing slash)."""
+        by_bucket: dict[str, list[str]] = {}
+        for p in paths:
+            bucket, _, key = p.partition("/")
+            by_bucket.setdefault(bucket, []).append(key)
+        for bucket, keys in by_bucket.items():
+            for i in range(0, len(keys), 1000):
+                batch = {"Objects": [{"Key": k} for k in keys[i : i + 1000]], "Quiet": True}
+                out = self.fs.call_s3("delete_objects", Bucket=bucket, Delete=batch)
+                errors = out.get("Errors") or []
+                if errors:
+                    first = errors[0]
+                    kind = PermissionError if first.get("Code") == "AccessDenied" else OSError
+                    raise kind(f"{first.get('Code')}: {first.get('Message')} ({len(errors)} keys not deleted)")
 
 
 def open_location(url: str, storage_options: dict[str, Any] | None = None, readonly: bool = True) -> Location:
-    """Open a local path or fsspec URL as a :class:`Location`."""
+    """Open a local path or fsspec URL as a :class:`Location`.
+
+    The filesystem's listing cache starts empty at every open: a listing made before (by an earlier
+    command in the same process) is never reused.
+    """
     options = dict(storage_options or {})
+    shown = mask_url(url)
+    secrets = secret_values(options) + url_secrets(url)
     try:
         fs, root = fsspec.core.url_to_fs(url, **options)
+        # fsspec shares one instance per (protocol, options) in a process; drop what it has listed
+        # so far, so that no listing made before this open is trusted by this command
+        fs.invalidate_cache()
     except ImportError as exc:
         scheme = url.split("://", 1)[0]
         raise UsageError(
-            f"{mask_url(url)}: no filesystem driver for '{scheme}://' is installed "
+            f"{shown}: no filesystem driver for '{scheme}://' is installed "
             f"(install the matching extra, for example: pip install 'stateshift[s3]')"
         ) from exc
-    except (ValueError, TypeError) as exc:
-        raise UsageError(f"{mask_url(url)}: cannot open this location: {exc}") from exc
+    except Exception as exc:  # bad options, a server unreachable at connect time (ftp, sftp), ...
+        detail = mask_text(" ".join(f"{type(exc).__name__}: {exc}".split()), secrets)[:300]
+        raise UsageError(f"{shown}: cannot open this location: {detail}") from exc
+    leaked = [s for s in url_secrets(url) if s in root]
+    if leaked:
+        scheme = url.split("://", 1)[0]
+        raise UsageError(
+            f"{shown}: the '{scheme}://' filesystem does not take credentials in the URL (they would be sent "
+            "as part of the path); pass them as storage options, for example -o key=... -o secret=..., "
+            "or through the environment"
+        )
     root = root.rstrip("/") or "/"
     if "://" not in url:
         url = os.path.abspath(url)

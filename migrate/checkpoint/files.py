@@ -41,7 +41,7 @@ def verbatim_files(ckpt: Checkpoint) -> tuple[list[CopyFile], list[CopyFile]]:
     loc = ckpt.location
     early: list[CopyFile] = []
     late: list[CopyFile] = []
-    for name, entry in sorted(loc.list_dir("").items()):
+    for name, entry in sorted(ckpt.root_listing.items()):
         if name in ("offsets", "state"):
             continue
         if name in ("metadata", ".metadata.crc"):
@@ -69,7 +69,7 @@ def verbatim_files(ckpt: Checkpoint) -> tuple[list[CopyFile], list[CopyFile]]:
 
 def rewritten_offsets(ckpt: Checkpoint, target_class: str, extra: dict[str, str] | None = None) -> list[tuple[str, bytes, bool]]:
     """(relative path, new content, whether the source had a crc sidecar) for every offsets entry."""
-    listing = ckpt.location.list_dir("offsets")
+    listing = ckpt.log_listings["offsets"]
     out = []
     changes = {PROVIDER_CONF: target_class, **(extra or {})}
     for batch_id in sorted(ckpt.offsets):

@@ -52,7 +52,7 @@ def changed_since(ckpt: Checkpoint) -> list[str]:
     signs = []
     for log in ("offsets", "commits"):
         before = {n for n in ckpt.log_listings.get(log, {}) if n.isdigit()}
-        after = {n for n in ckpt.location.list_dir(log) if n.isdigit()}
+        after = {n for n in ckpt.location.list_dir(log, refresh=True) if n.isdigit()}
         for name in sorted(after - before, key=int):
             signs.append(f"{log}/{name} appeared while stateshift was reading")
     return signs

@@ -99,6 +99,10 @@ class Checkpoint:
     log_listings: dict[str, dict[str, Entry]] = field(default_factory=dict, compare=False, repr=False)
 
     @property
+    def root_listing(self) -> dict[str, Entry]:
+        return self.log_listings.get("") or self.location.list_dir("")
+
+    @property
     def state_version(self) -> int:
         return self.latest_batch + 1
 
@@ -248,5 +252,5 @@ def load_checkpoint(loc: Location) -> Checkpoint:
         conf=conf,
         provider_class=provider_class,
         operators=tuple(operators),
-        log_listings={"offsets": offsets_listing, "commits": commits_listing},
+        log_listings={"": root, "offsets": offsets_listing, "commits": commits_listing},
     )

@@ -87,7 +87,8 @@ def _write_with_crc(dst: Location, rel: str, data: bytes, crc: bool) -> list[dic
     name = rel.rsplit("/", 1)[-1]
     parent = rel.rsplit("/", 1)[0] if "/" in rel else ""
     crc_rel = f"{parent}/{crc_name(name)}" if parent else crc_name(name)
-    dst.remove(crc_rel)
+    if dst.is_local:  # sidecars only exist on local disk; never leave a stale one beside new bytes
+        dst.remove(crc_rel)
     dst.write_bytes(rel, data)
     out = [{"path": rel, "bytes": len(data), "action": "write"}]
     if crc and dst.is_local:
@@ -267,7 +268,7 @@ def publish(
     if query_metadata is None:
         # the real metadata is the commit point; its sidecar follows (a missing sidecar is harmless)
         report.files.append(_copy(src, dst, "metadata"))
-        if ".metadata.crc" in src.list_dir(""):
+        if ".metadata.crc" in ckpt.root_listing:
             report.files.append(_copy(src, dst, ".metadata.crc"))
     else:
         report.files += _write_with_crc(dst, "metadata", query_metadata, True)

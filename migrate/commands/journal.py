@@ -103,7 +103,8 @@ def run_with_journal(
                 done[key_of(t)] = again
                 progress(again)
                 continue
-        dst.remove(target_rel(t), recursive=True)
+        if resume:  # drop anything the interrupted run half-wrote (a fresh target is empty already)
+            dst.remove(target_rel(t), recursive=True)
         todo.append(t)
 
     def finished(r: R) -> None:

@@ -1,0 +1,79 @@
+"""Location on local disk: the same contract as on object stores (see test_storage_s3_requests.py).
+
+Listing returns names with sizes and kinds; an absent directory is empty; writes go through a
+temporary name and a rename and leave nothing else behind; removes of missing files are quiet;
+a read-only location refuses every write; errors name the file.
+"""
+
+from __future__ import annotations
+
+import os
+
+import pytest
+
+from migrate.errors import CorruptInput, StateshiftError
+from migrate.storage import open_location
+
+
+def test_list_dir_names_sizes_kinds_and_absent_directories(tmp_path):
+    (tmp_path / "d").mkdir()
+    (tmp_path / "d" / "x").write_bytes(b"12345")
+    (tmp_path / "f").write_bytes(b"1")
+    loc = open_location(str(tmp_path))
+    listing = loc.list_dir("")
+    assert {n: (e.is_dir, e.size) for n, e in listing.items() if not e.is_dir} == {"f": (False, 1)}
+    assert listing["d"].is_dir
+    assert loc.list_dir("d")["x"].size == 5
+    assert loc.list_dir("d")["x"].mtime is not None
+    assert loc.list_dir("missing") == {} and loc.list_dir("f") == {}
+
+
+def test_write_bytes_replaces_atomically_and_leaves_no_temporary_file(tmp_path):
+    loc = open_location(str(tmp_path / "t"), readonly=False)
+    loc.write_bytes("a/b/c.bin", b"first")
+    loc.write_bytes("a/b/c.bin", b"second")
+    assert (tmp_path / "t" / "a" / "b" / "c.bin").read_bytes() == b"second"
+    assert sorted(os.listdir(tmp_path / "t" / "a" / "b")) == ["c.bin"]
+    assert loc.read_bytes("a/b/c.bin") == b"second"
+
+
+def test_put_get_remove_and_recursive_remove(tmp_path):
+    loc = open_location(str(tmp_path / "t"), readonly=False)
+    src = tmp_path / "local.sst"
+    src.write_bytes(b"sst" * 100)
+    loc.put_file(str(src), "SSTs/1.sst")
+    loc.get_file("SSTs/1.sst", str(tmp_path / "back"))
+    assert (tmp_path / "back").read_bytes() == src.read_bytes()
+    loc.remove("SSTs/never-there.crc")  # quiet
+    loc.write_bytes("SSTs/2.sst", b"2")
+    loc.remove("SSTs/2.sst")
+    assert sorted(loc.list_dir("SSTs")) == ["1.sst"]
+    loc.remove("SSTs", recursive=True)
+    assert loc.list_dir("") == {}
+    loc.remove("SSTs", recursive=True)  # gone already: quiet
+
+
+def test_missing_files_are_corrupt_input_naming_the_path(tmp_path):
+    loc = open_location(str(tmp_path))
+    with pytest.raises(CorruptInput, match=f"{tmp_path}/nope: file is missing"):
+        loc.read_bytes("nope")
+    (tmp_path / "dir").mkdir()
+    with pytest.raises(CorruptInput, match="found a directory"):
+        loc.read_bytes("dir")
+    with pytest.raises(CorruptInput, match="missing"):
+        loc.get_file("nope", str(tmp_path / "x"))
+
+
+def test_a_readonly_location_refuses_every_write(tmp_path):
+    (tmp_path / "keep").write_bytes(b"k")
+    loc = open_location(str(tmp_path))
+    for attempt in (
+        lambda: loc.write_bytes("w", b"x"),
+        lambda: loc.put_file(str(tmp_path / "keep"), "w"),
+        lambda: loc.remove("keep"),
+        lambda: loc.remove("", recursive=True),
+        lambda: loc.makedirs("d"),
+    ):
+        with pytest.raises(StateshiftError, match="read-only"):
+            attempt()
+    assert sorted(os.listdir(tmp_path)) == ["keep"]
