@@ -117,11 +117,13 @@ def run_partition(task: PartitionTask) -> PartitionResult:
     dst = provider_for(task.target_provider)
     rctx = ReadContext(conf=task.read_conf, num_cols_prefix_key=task.num_cols_prefix_key, listing=task.listing)
     source_bytes = sum(f.size for f in src.source_files(task.source, task.version, rctx))
+    props = src.store_properties(task.source, task.version, rctx)  # what the rows cannot carry
+    dst.check_writable(props, task.source.describe())
     stream = DigestingIterator(src.read(task.source, task.version, rctx))
-    wctx = WriteContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, write_crc=task.write_crc)
+    wctx = WriteContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, write_crc=task.write_crc, extra=props)
     written = dst.write(task.target, task.version, stream, wctx)
     back = digest_batches(
-        dst.read(task.target, task.version, ReadContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key))
+        dst.read(task.target, task.version, ReadContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, extra=props))
     )
     return PartitionResult(
         task.source.operator_id,
@@ -179,6 +181,22 @@ def checked_jobs(jobs: int) -> int:
     return jobs
 
 
+def refuse_unwritable(ckpt: Checkpoint, target_provider: str) -> None:
+    """Refuse, before anything is written, stores the target provider cannot hold (one store
+    partition per operator store is asked: the kind of a store is the same in all its partitions)."""
+    src = provider_for(ckpt.provider_class)
+    dst = provider_for(target_provider)
+    seen: set[tuple[int, str]] = set()
+    for op in ckpt.operators:
+        for sp in op.partitions:
+            if (sp.operator_id, sp.store_name) in seen or not src.versions(sp.listing):
+                continue
+            seen.add((sp.operator_id, sp.store_name))
+            prefix = op.store_info(sp.store_name).num_cols_prefix_key
+            ctx = ReadContext(conf=ckpt.conf, num_cols_prefix_key=prefix, listing=sp.listing)
+            dst.check_writable(src.store_properties(sp.dir, ckpt.state_version, ctx), sp.dir.describe())
+
+
 def digest_partition(sp: StorePartition, provider: str, version: int, conf: dict[str, str], prefix: int) -> tuple[Digest, int]:
     """Digest of one store partition of a checkpoint, plus its source bytes."""
     p = provider_for(provider)
@@ -187,15 +205,40 @@ def digest_partition(sp: StorePartition, provider: str, version: int, conf: dict
     return digest_batches(p.read(sp.dir, version, ctx)), size
 
 
+PARALLEL_MIN_BYTES = 16 << 20
+PARALLEL_MIN_TASKS = 8
+
+
+def _known_bytes(tasks: list[Any]) -> int:
+    """Source bytes the tasks' listings show (archive tasks: their data file sizes)."""
+    total = 0
+    for t in tasks:
+        listing = getattr(t, "listing", None)
+        if listing:
+            total += sum(getattr(e, "size", 0) for e in listing.values())
+        data_file = getattr(t, "data_file", None)
+        if data_file is not None:
+            total += int(getattr(data_file, "bytes", 0) or getattr(data_file, "size", 0) or 0)
+        if not listing and data_file is None:
+            return PARALLEL_MIN_BYTES  # unknown: assume it is worth it
+    return total
+
+
 def run_tasks(
     tasks: list[PartitionTask],
     fn: Callable[[PartitionTask], PartitionResult],
     jobs: int,
     on_done: Callable[[PartitionResult], None],
 ) -> list[PartitionResult]:
-    """Run tasks in order (``jobs`` <= 1) or in worker processes; memory is bounded by jobs in flight."""
+    """Run tasks in order (``jobs`` <= 1) or in worker processes; memory is bounded by jobs in flight.
+
+    Starting worker processes costs about a second each, so small jobs (fewer than
+    ``PARALLEL_MIN_TASKS`` partitions with less than ``PARALLEL_MIN_BYTES`` of source state by the
+    listings the tasks carry) run in this process.
+    """
     results: list[PartitionResult] = []
-    if jobs <= 1 or len(tasks) <= 1:
+    small = len(tasks) < PARALLEL_MIN_TASKS and _known_bytes(tasks) < PARALLEL_MIN_BYTES
+    if jobs <= 1 or len(tasks) <= 1 or small:
         for t in tasks:
             r = fn(t)
             on_done(r)
