@@ -54,11 +54,13 @@ class Digest:
 
 
 def _mix(x: np.ndarray) -> np.ndarray:
-    x = x ^ (x >> np.uint64(30))
-    x = x * _M1
-    x = x ^ (x >> np.uint64(27))
-    x = x * _M2
-    return x ^ (x >> np.uint64(31))
+    """splitmix64 finaliser, in place on a fresh array (callers pass temporaries)."""
+    x ^= x >> np.uint64(30)
+    x *= _M1
+    x ^= x >> np.uint64(27)
+    x *= _M2
+    x ^= x >> np.uint64(31)
+    return x
 
 
 def _words(arr: pa.Array) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -91,25 +93,62 @@ def _words(arr: pa.Array) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return padded.view("<u8"), first, nwords
 
 
-def _side_hash(arr: pa.Array, lane: int) -> tuple[np.ndarray, np.ndarray]:
+_COLUMN_WORDS = 32  # word positions summed column by column; longer rows' tails use reduceat
+
+
+def _powers(lane: int, count: int) -> np.ndarray:
+    powers = np.full(max(count, 1), _LANES[lane], dtype=np.uint64)
+    powers[0] = 1
+    return np.cumprod(powers, dtype=np.uint64)
+
+
+def _side_hashes(arr: pa.Array) -> tuple[np.ndarray, np.ndarray]:
+    """``h`` of every row for both lanes: ``sum(w_j * P**j) mod 2**64`` over its words.
+
+    Word position by word position: rows sorted by word count, so the rows that have a word
+    ``j`` are a prefix, and each position is one gather shared by both lanes. Rows of one
+    width (most value rows) need no sort and no gather. Words past position
+    ``_COLUMN_WORDS`` of long rows are summed with one ``reduceat`` per lane.
+    """
     words, first, nwords = _words(arr)
     n = len(first)
-    h = np.zeros(n, dtype=np.uint64)
-    total = int(nwords.sum())
-    if total:
-        maxw = int(nwords.max())
-        powers = np.empty(maxw, dtype=np.uint64)
-        powers[0] = 1
-        if maxw > 1:
-            powers[1:] = _LANES[lane]
-            powers = np.cumprod(powers, dtype=np.uint64)
-        pos = np.arange(total) - np.repeat(np.cumsum(nwords) - nwords, nwords)
-        idx = np.repeat(first, nwords) + pos
-        contrib = words[idx] * powers[pos]
-        nonempty = nwords > 0
-        starts = (np.cumsum(nwords) - nwords)[nonempty]
-        h[nonempty] = np.add.reduceat(contrib, starts)
-    return h, nwords
+    h = [np.zeros(n, dtype=np.uint64), np.zeros(n, dtype=np.uint64)]
+    if n == 0 or not words.size:
+        return h[0], h[1]
+    maxw = int(nwords.max())
+    p = (_powers(0, maxw), _powers(1, maxw))
+    cols = min(maxw, _COLUMN_WORDS)
+    if int(nwords.min()) == maxw and int(first[-1]) + maxw <= len(words) and np.array_equal(first, np.arange(n) * maxw + first[0]):
+        table = words[int(first[0]) : int(first[0]) + n * maxw].reshape(n, maxw)
+        for j in range(cols):
+            col = table[:, j]
+            h[0] += col * p[0][j]
+            h[1] += col * p[1][j]
+    else:
+        order = np.argsort(-nwords, kind="stable")
+        sfirst = first[order]
+        # counts[j]: rows with more than j words (a prefix of the sorted order)
+        counts = np.cumsum(np.bincount(np.minimum(nwords, cols), minlength=cols + 1)[::-1])[::-1][1:]
+        s0, s1 = np.zeros(n, np.uint64), np.zeros(n, np.uint64)
+        for j in range(cols):
+            m = int(counts[j])
+            if m == 0:
+                break
+            col = words[sfirst[:m] + j]
+            s0[:m] += col * p[0][j]
+            s1[:m] += col * p[1][j]
+        h[0][order] = s0
+        h[1][order] = s1
+    if maxw > cols:  # tails of the long rows
+        long_rows = np.flatnonzero(nwords > cols)
+        tail = nwords[long_rows] - cols
+        total = int(tail.sum())
+        seg = np.cumsum(tail) - tail
+        pos = np.arange(total) - np.repeat(seg, tail)
+        tw = words[np.repeat(first[long_rows] + cols, tail) + pos]
+        for lane in (0, 1):
+            h[lane][long_rows] += np.add.reduceat(tw * p[lane][cols + pos], seg)
+    return h[0], h[1]
 
 
 def _byte_lengths(arr: pa.Array) -> np.ndarray:
@@ -125,17 +164,18 @@ def digest_batch(batch: pa.RecordBatch) -> Digest:
         return Digest()
     keys = batch.column("key")
     values = batch.column("value")
-    klen = _byte_lengths(keys)
-    vlen = _byte_lengths(values)
+    klen = _byte_lengths(keys) * _GOLDEN
+    vlen = _byte_lengths(values) * _GOLDEN
     lanes = []
     with np.errstate(over="ignore"):
+        hk = _side_hashes(keys)
+        hv = _side_hashes(values)
         for lane in (0, 1):
-            hk, _ = _side_hash(keys, lane)
-            hv, _ = _side_hash(values, lane)
-            a = _mix(hk ^ _SEEDS[lane] ^ (klen * _GOLDEN))
-            b = _mix(hv + (vlen * _GOLDEN) + _SEEDS[1 - lane])
-            row = _mix(a * _LANES[lane] + b)
-            lanes.append(int(row.sum(dtype=np.uint64)))
+            a = _mix(hk[lane] ^ _SEEDS[lane] ^ klen)
+            b = _mix(hv[lane] + vlen + _SEEDS[1 - lane])
+            a *= _LANES[lane]
+            a += b
+            lanes.append(int(_mix(a).sum(dtype=np.uint64)))
     return Digest(n, lanes[0], lanes[1])
 
 

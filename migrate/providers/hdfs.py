@@ -8,6 +8,12 @@ Each file is one compressed stream (codec from the pinned conf, lz4 by default) 
 
 Version V is the newest snapshot S <= V (or the empty map when there is none) plus the deltas
 S+1..V applied in order. A missing delta in that chain is an error, never a partial state.
+
+Reading is vectorised: one tight loop finds the record offsets of each file
+(:func:`record_starts`), keys and values are gathered out of the decompressed buffer by Arrow
+``take`` (:func:`record_arrays`), and the replay (last write wins, removals drop the key) is one
+hash aggregation over all files of the chain (:func:`resolve_versions`). :func:`parse_records`
+stays the plain reference walk; every irregular file goes through it for its exact error.
 """
 
 from __future__ import annotations
@@ -23,7 +29,15 @@ from ..codecs import codec_for
 from ..codecs.hadoop_crc import crc_name, make_crc, verify_crc
 from ..errors import CorruptInput, Unsupported
 from ..storage import Entry
-from .base import BATCH_ROWS, ROW_SCHEMA, Provider, ReadContext, StoreDir, WriteContext, WrittenFile
+from .base import (
+    BATCH_ROWS,
+    ROW_SCHEMA,
+    Provider,
+    ReadContext,
+    StoreDir,
+    WriteContext,
+    WrittenFile,
+)
 
 _FILE = re.compile(r"^(\d+)(?:_([0-9A-Za-z-]+))?\.(delta|snapshot)$")
 _END = b"\xff\xff\xff\xff"
@@ -59,6 +73,111 @@ def parse_records(data: bytes, where: str, allow_removals: bool) -> Iterator[tup
         pos += vlen
     if pos != n:
         raise CorruptInput(f"{n - pos} unexpected bytes after the end marker", where)
+
+
+class _Irregular(Exception):
+    """The fast walk met something parse_records must explain (internal)."""
+
+
+_BE_INT = struct.Struct(">i")
+
+
+def record_starts(data: bytes, where: str, allow_removals: bool) -> np.ndarray:
+    """Byte offset of every record of one decompressed file (int64), checked like ``parse_records``.
+
+    Walking the records is sequential by nature (each position depends on the lengths before it),
+    so this is a tight loop that only reads the two lengths of each record; the keys and values
+    are then cut out by :func:`record_arrays` with whole-buffer operations. Anything irregular (a
+    negative length that is neither the end marker nor an allowed removal, a length running past
+    the end, a missing end marker, trailing bytes) sends the file through :func:`parse_records`,
+    which raises the exact error it always has.
+    """
+    unpack = _BE_INT.unpack_from
+    starts: list[int] = []
+    add = starts.append
+    pos = 0
+    klen = 0
+    try:
+        while True:
+            (klen,) = unpack(data, pos)
+            if klen < 0:
+                break
+            vpos = pos + 4 + klen
+            (vlen,) = unpack(data, vpos)
+            add(pos)
+            if vlen < 0:
+                if vlen != -1 or not allow_removals:
+                    raise _Irregular
+                pos = vpos + 4
+            else:
+                pos = vpos + 4 + vlen
+    except (struct.error, _Irregular):
+        klen = 0
+    if klen != -1 or pos + 4 != len(data):
+        for _ in parse_records(data, where, allow_removals):
+            pass
+        raise CorruptInput(f"records cannot be walked (stopped at byte {pos})", where)  # never: parse_records raised
+    return np.array(starts, dtype=np.int64)
+
+
+def _be_int32(buf: np.ndarray, at: np.ndarray) -> np.ndarray:
+    """Big-endian int32 at each byte offset ``at`` of a uint8 buffer."""
+    b = buf[(at[:, None] + np.arange(4)).ravel()].reshape(-1, 4)
+    return b.copy().view(">i4").ravel().astype(np.int64)
+
+
+def record_arrays(data: bytes, where: str, allow_removals: bool) -> tuple[pa.Array, pa.Array, np.ndarray]:
+    """(keys, values, removed) of one decompressed file, in file order; a removal has an empty value.
+
+    The buffer is viewed as one binary array whose elements alternate header / key / header /
+    value (its offsets are the record boundaries), and the keys and values are gathered out of it
+    by two ``take`` calls: no per-record Python beyond :func:`record_starts`.
+    """
+    starts = record_starts(data, where, allow_removals)
+    n = len(starts)
+    buf = np.frombuffer(data, dtype=np.uint8)
+    klen = _be_int32(buf, starts) if n else np.zeros(0, np.int64)
+    vpos = starts + 4 + klen
+    removed = (_be_int32(buf, vpos) < 0) if n else np.zeros(0, bool)
+    large = len(data) >= 2**31
+    bounds = np.empty(4 * n + 1, dtype=np.int64 if large else np.int32)
+    bounds[0 : 4 * n : 4] = starts
+    bounds[1 : 4 * n : 4] = starts + 4
+    bounds[2 : 4 * n : 4] = vpos
+    bounds[3 : 4 * n : 4] = vpos + 4
+    bounds[4 * n] = len(data) - 4  # the end marker follows the last record
+    elements = pa.Array.from_buffers(
+        pa.large_binary() if large else pa.binary(), 4 * n, [None, pa.py_buffer(bounds), pa.py_buffer(data)]
+    )
+    keys = elements.take(pa.array(np.arange(1, 4 * n, 4, dtype=np.int64)))
+    values = elements.take(pa.array(np.arange(3, 4 * n, 4, dtype=np.int64)))
+    return keys, values, removed
+
+
+def resolve_versions(files: list[tuple[pa.Array, pa.Array, np.ndarray]]) -> tuple[pa.Array, pa.Array]:
+    """The map after applying the files' records in order: the last write of each key wins and a
+    removal drops the key (the engine's replay of a snapshot and its deltas).
+
+    Done with one hash aggregation (newest record per key) and two gathers.
+    """
+    if not files:
+        return pa.array([], pa.binary()), pa.array([], pa.binary())
+    key_type = pa.large_binary() if any(pa.types.is_large_binary(f[0].type) for f in files) else pa.binary()
+    keys = pa.chunked_array([f[0].cast(key_type) for f in files], key_type)
+    values = pa.chunked_array([f[1].cast(key_type) for f in files], key_type)
+    removed = np.concatenate([f[2] for f in files])
+    total = len(removed)
+    groups = (
+        pa.table({"key": keys, "seq": pa.array(np.arange(total, dtype=np.int64))})
+        .group_by("key", use_threads=False)
+        .aggregate([("seq", "max")])
+    )
+    if groups.num_rows == total and not removed.any():  # nothing overwritten, nothing removed
+        return keys.combine_chunks(), values.combine_chunks()
+    last = groups.column("seq_max").to_numpy()
+    last = last[~removed[last]]
+    order = pa.array(np.sort(last))  # file order of the surviving records (deterministic output)
+    return keys.take(order).combine_chunks(), values.take(order).combine_chunks()
 
 
 def frame_records(batches: Iterable[pa.RecordBatch]) -> bytes:
@@ -161,23 +280,17 @@ class HDFSProvider(Provider):
             return
         listing = self._listing(store, ctx)
         names = self.chain(store, version, listing)
-        state: dict[bytes, bytes] = {}
+        files = []
         for name in names:
             data = self.read_file(store, name, ctx.codec, listing)
-            is_delta = name.endswith(".delta")
-            for key, value in parse_records(data, store.describe(name), allow_removals=is_delta):
-                if value is None:
-                    state.pop(key, None)
-                else:
-                    state[key] = value
-        keys = list(state.keys())
-        values = list(state.values())
-        del state
+            files.append(record_arrays(data, store.describe(name), allow_removals=name.endswith(".delta")))
+        keys, values = resolve_versions(files)
+        del files
         for i in range(0, len(keys), BATCH_ROWS):
-            yield pa.RecordBatch.from_arrays(
-                [pa.array(keys[i : i + BATCH_ROWS], pa.binary()), pa.array(values[i : i + BATCH_ROWS], pa.binary())],
-                schema=ROW_SCHEMA,
-            )
+            k, v = keys.slice(i, BATCH_ROWS), values.slice(i, BATCH_ROWS)
+            if k.type != pa.binary():
+                k, v = k.cast(pa.binary()), v.cast(pa.binary())
+            yield pa.RecordBatch.from_arrays([k, v], schema=ROW_SCHEMA)
 
     def write(
         self, store: StoreDir, version: int, batches: Iterable[pa.RecordBatch], ctx: WriteContext
@@ -187,7 +300,9 @@ class HDFSProvider(Provider):
         data = codec_for(ctx.codec, where).compress(frame_records(batches))
         crc_rel = f"{store.rel}/{crc_name(name)}"
         # never leave a stale sidecar beside a rewritten file: drop it before the data changes
-        store.location.remove(crc_rel)
+        # (sidecars only live on local disk; on object stores this would be a wasted DELETE)
+        if ctx.write_crc or store.location.is_local:
+            store.location.remove(crc_rel)
         store.location.write_bytes(f"{store.rel}/{name}", data)
         written = [WrittenFile(f"{store.rel}/{name}", len(data))]
         if ctx.write_crc:
