@@ -1,0 +1,105 @@
+"""Run one command as a child process and measure it: wall time, CPU time, peak memory.
+
+* ``cpu_s``: user + system time of the child and every descendant it waited for (``wait4``);
+* ``max_rss_mb``: the largest resident set of any one process of the tree (``ru_maxrss``);
+* ``tree_rss_mb``: the largest sum of resident sets over the whole process tree, sampled from
+  ``/proc`` every 20 ms (worker processes of ``--jobs`` run at the same time, so this is what the
+  machine must hold);
+* ``load``: the 1-minute load average before and after (other work on the machine shows here).
+"""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import threading
+import time
+from dataclasses import dataclass
+
+
+@dataclass(frozen=True)
+class Measured:
+    argv: tuple[str, ...]
+    returncode: int
+    wall_s: float
+    cpu_s: float
+    max_rss_mb: float
+    tree_rss_mb: float
+    load_before: float
+    load_after: float
+    stdout: str
+    stderr: str
+
+
+def _children() -> dict[int, list[int]]:
+    kids: dict[int, list[int]] = {}
+    for name in os.listdir("/proc"):
+        if not name.isdigit():
+            continue
+        try:
+            with open(f"/proc/{name}/stat", "rb") as f:
+                stat = f.read()
+        except OSError:
+            continue
+        ppid = int(stat[stat.rindex(b")") + 2 :].split()[1])
+        kids.setdefault(ppid, []).append(int(name))
+    return kids
+
+
+def _rss_kb(pid: int) -> int:
+    try:
+        with open(f"/proc/{pid}/statm") as f:
+            return int(f.read().split()[1]) * (os.sysconf("SC_PAGE_SIZE") // 1024)
+    except OSError:
+        return 0
+
+
+def tree_rss_kb(root: int) -> int:
+    kids = _children()
+    total, todo = 0, [root]
+    while todo:
+        pid = todo.pop()
+        total += _rss_kb(pid)
+        todo.extend(kids.get(pid, []))
+    return total
+
+
+def run(argv: list[str], env: dict[str, str] | None = None, cwd: str | None = None, interval: float = 0.02) -> Measured:
+    out_path = f"/tmp/stateshift-bench-{os.getpid()}-{time.monotonic_ns()}"
+    load_before = os.getloadavg()[0]
+    with open(out_path + ".out", "wb") as out, open(out_path + ".err", "wb") as err:
+        t0 = time.perf_counter()
+        proc = subprocess.Popen(argv, stdout=out, stderr=err, env=env, cwd=cwd)
+        peak = [0]
+        done = threading.Event()
+
+        def sample() -> None:
+            while not done.is_set():
+                peak[0] = max(peak[0], tree_rss_kb(proc.pid))
+                done.wait(interval)
+
+        sampler = threading.Thread(target=sample, daemon=True)
+        sampler.start()
+        _, status, usage = os.wait4(proc.pid, 0)
+        wall = time.perf_counter() - t0
+        done.set()
+        sampler.join()
+        proc.returncode = os.waitstatus_to_exitcode(status)
+    with open(out_path + ".out", encoding="utf-8", errors="replace") as f:
+        stdout = f.read()
+    with open(out_path + ".err", encoding="utf-8", errors="replace") as f:
+        stderr = f.read()
+    os.remove(out_path + ".out")
+    os.remove(out_path + ".err")
+    return Measured(
+        argv=tuple(argv),
+        returncode=proc.returncode,
+        wall_s=wall,
+        cpu_s=usage.ru_utime + usage.ru_stime,
+        max_rss_mb=usage.ru_maxrss / 1024,
+        tree_rss_mb=peak[0] / 1024,
+        load_before=load_before,
+        load_after=os.getloadavg()[0],
+        stdout=stdout,
+        stderr=stderr,
+    )
