@@ -26,6 +26,9 @@ from ..storage import Location
 from .manifest import MANIFEST_NAME, DataFile, Manifest, parse_manifest
 
 _CHUNK = 1 << 20
+#: Parquet key-value metadata keys that hold the store properties of a data file (see
+#: ``migrate.providers.base``: facts a writer needs besides the rows, e.g. column families)
+PROPERTY_PREFIX = "stateshift.property."
 
 
 def load_manifest(archive: Location) -> Manifest:
@@ -121,3 +124,19 @@ def read_rows(archive: Location, data_file: DataFile, batch_rows: int = BATCH_RO
             raise CorruptInput(f"Parquet data does not read back ({' '.join(str(exc).split())})", where) from exc
         if rows != data_file.rows:
             raise CorruptInput(f"holds {rows} rows but {MANIFEST_NAME} lists {data_file.rows}", where)
+
+
+def store_properties(archive: Location, data_file: DataFile) -> dict[str, str]:
+    """The store properties recorded in one data file's Parquet metadata (``{}`` for most stores)."""
+    where = archive.describe(data_file.path)
+    with archive.open_read(data_file.path) as f:
+        try:
+            metadata = pq.ParquetFile(f).schema_arrow.metadata or {}
+        except (pa.ArrowException, OSError) as exc:
+            raise CorruptInput(f"is not a readable Parquet file ({' '.join(str(exc).split())})", where) from exc
+    out = {}
+    for k, v in metadata.items():
+        key = k.decode("utf-8", "replace")
+        if key.startswith(PROPERTY_PREFIX):
+            out[key[len(PROPERTY_PREFIX):]] = v.decode("utf-8", "replace")
+    return out

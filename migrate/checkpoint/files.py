@@ -4,14 +4,22 @@ Verbatim: the query ``metadata``, ``commits/``, ``sources/``, anything else at t
 does not know (kept, never dropped), and the operator metadata and schema files under
 ``state/<op>/_metadata``, ``state/<op>/_stateSchema`` and ``state/<op>/<partition>/_metadata``.
 Not verbatim: ``offsets/`` (the pinned provider class is rewritten) and the state files
-themselves (rewritten in the target layout by the providers).
+themselves (rewritten in the target layout by the providers). Operator metadata v2
+(``state/<op>/_metadata/v2/<batch>``, transformWithState on Spark 4.3.0) names its state schema
+files by absolute path (observed: ``"stateSchemaFilePaths":["file:/abs/ckpt/state/0/_stateSchema/default/0_<uuid>"]``,
+and a restart fails when that path does not exist): :func:`point_schema_paths_at` rewrites those
+paths to the target.
 """
 
 from __future__ import annotations
 
+import json
+import os
+import re
 from dataclasses import dataclass
 
 from ..codecs.hadoop_crc import crc_name
+from ..errors import CorruptInput
 from ..storage import Location
 from .logs import PROVIDER_CONF, OffsetEntry, format_offsets, with_conf
 from .model import Checkpoint
@@ -81,3 +89,56 @@ def rewritten_offsets(ckpt: Checkpoint, target_class: str, extra: dict[str, str]
 def conf_changes(ckpt: Checkpoint, target_class: str) -> dict[str, tuple[str | None, str]]:
     old = ckpt.conf.get(PROVIDER_CONF)
     return {PROVIDER_CONF: (old, target_class)} if old != target_class else {}
+
+
+_OPERATOR_METADATA_V2 = re.compile(r"^state/\d+/_metadata/v2/\d+$")
+_SCHEMA_REL = re.compile(r"/(state/\d+/_stateSchema/[^/]+/[^/]+)$")
+_SCHEME = re.compile(r"^([A-Za-z][A-Za-z0-9+.-]*):")
+
+
+def is_operator_metadata_v2(rel: str) -> bool:
+    return bool(_OPERATOR_METADATA_V2.match(rel))
+
+
+def engine_root(dst: Location, like: str) -> str:
+    """The root of ``dst`` the way the engine writes it inside a path: ``file:<absolute path>``
+    on local disk (observed); elsewhere the scheme of ``like`` (the path being replaced) when it
+    is not ``file``, ``s3a`` for s3 (common practice: the engine reaches S3 through Hadoop's S3A
+    connector), else the filesystem's own protocol."""
+    if dst.is_local:
+        return "file:" + os.path.abspath(dst.root)
+    m = _SCHEME.match(like)
+    scheme = m.group(1) if m and m.group(1) != "file" else None
+    if scheme is None:
+        protocol = dst.fs.protocol[0] if isinstance(dst.fs.protocol, (tuple, list)) else dst.fs.protocol
+        scheme = "s3a" if protocol in ("s3", "s3a") else str(protocol)
+    return f"{scheme}://{dst.root.strip('/')}"
+
+
+def point_schema_paths_at(data: bytes, dst: Location, where: str) -> bytes:
+    """Operator metadata v2 with every state schema file path moved under ``dst`` (unchanged
+    bytes when it names none)."""
+    text = data.decode("utf-8", "replace")
+    header, sep, body = text.partition("\n")
+    if not sep or not header.startswith("v"):
+        raise CorruptInput("operator metadata does not start with a version line", where)
+    try:
+        obj = json.loads(body)
+    except ValueError as exc:
+        raise CorruptInput(f"operator metadata is not valid JSON ({exc})", where) from None
+    changed = False
+    for info in obj.get("stateStoreInfo") or [] if isinstance(obj, dict) else []:
+        paths = info.get("stateSchemaFilePaths") if isinstance(info, dict) else None
+        if not isinstance(paths, list):
+            continue
+        new = []
+        for path in paths:
+            m = _SCHEMA_REL.search(path) if isinstance(path, str) else None
+            if m is None:
+                raise CorruptInput(f"state schema file path {path!r} is not under state/<op>/_stateSchema/", where)
+            new.append(f"{engine_root(dst, path)}/{m.group(1)}")
+        changed = changed or new != paths
+        info["stateSchemaFilePaths"] = new
+    if not changed:
+        return data
+    return (header + "\n" + json.dumps(obj, separators=(",", ":"), ensure_ascii=False)).encode("utf-8")

@@ -20,7 +20,13 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from .. import faults
-from ..checkpoint.files import conf_changes, rewritten_offsets, verbatim_files
+from ..checkpoint.files import (
+    conf_changes,
+    is_operator_metadata_v2,
+    point_schema_paths_at,
+    rewritten_offsets,
+    verbatim_files,
+)
 from ..checkpoint.liveness import changed_since, running_signs
 from ..checkpoint.model import Checkpoint, load_checkpoint
 from ..checkpoint.schemas import check_schemas
@@ -37,6 +43,7 @@ from .common import (
     digest_partition,
     guard_target,
     prepare_target,
+    refuse_unwritable,
     reverify_partition,
     run_partition,
     run_tasks,
@@ -98,6 +105,12 @@ def _write_with_crc(dst: Location, rel: str, data: bytes, crc: bool) -> list[dic
     return out
 
 
+def crc_rel(rel: str) -> str:
+    """The checksum sidecar beside ``rel``."""
+    parent, _, name = rel.rpartition("/")
+    return f"{parent}/{crc_name(name)}" if parent else crc_name(name)
+
+
 def _copy(src: Location, dst: Location, rel: str) -> dict[str, Any]:
     data = src.read_bytes(rel)
     dst.write_bytes(rel, data)
@@ -133,6 +146,7 @@ def convert(
     target = provider_for(target_class)
     ckpt.provider  # an unknown source provider class raises Unsupported here
     check_schemas(ckpt, verbatim_files(ckpt)[0])
+    refuse_unwritable(ckpt, target_class)
     report = ConvertReport(
         source=src.display,
         target=dst.display,
@@ -256,8 +270,13 @@ def publish(
     """Copy the verbatim files and write the logs; the real ``metadata`` goes last."""
     src = ckpt.location
     early, late = verbatim_files(ckpt)
+    moved = {f.rel for f in early if is_operator_metadata_v2(f.rel)}  # schema paths point at dst
     for f in early:
-        report.files.append(_copy(src, dst, f.rel))
+        if f.rel in moved:
+            data = point_schema_paths_at(src.read_bytes(f.rel), dst, src.describe(f.rel))
+            report.files += _write_with_crc(dst, f.rel, data, crc_rel(f.rel) in {g.rel for g in early})
+        elif f.rel not in {crc_rel(m) for m in moved}:
+            report.files.append(_copy(src, dst, f.rel))
     for f in late:
         if f.rel in ("metadata", ".metadata.crc"):
             continue

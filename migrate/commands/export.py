@@ -35,6 +35,7 @@ from ..archive.manifest import (
     StoreEntry,
     seal,
 )
+from ..archive.reader import PROPERTY_PREFIX
 from ..archive.writer import (
     WrittenData,
     checkpoint_rel,
@@ -93,7 +94,9 @@ def run_export_task(task: ExportTask) -> ExportResult:
     ctx = ReadContext(conf=task.conf, num_cols_prefix_key=task.num_cols_prefix_key, listing=task.listing)
     source_bytes = sum(f.size for f in p.source_files(task.source, task.version, ctx))
     decoder = decoder_for(task.schema_bytes, task.schema_where)
-    written = write_data_file(task.archive, task.rel, p.read(task.source, task.version, ctx), decoder, task.metadata)
+    props = p.store_properties(task.source, task.version, ctx)  # kept with the rows, for import
+    metadata = {**task.metadata, **{f"{PROPERTY_PREFIX}{k}": v for k, v in props.items()}}
+    written = write_data_file(task.archive, task.rel, p.read(task.source, task.version, ctx), decoder, metadata)
     return ExportResult(task.source.operator_id, task.source.store_name, task.source.partition, written, source_bytes)
 
 

@@ -29,7 +29,8 @@ from typing import Any
 
 from .. import faults
 from ..archive.manifest import CHECKPOINT_DIR, MANIFEST_NAME, DataFile, Manifest
-from ..archive.reader import check_archive, load_manifest, read_rows
+from ..archive.reader import check_archive, load_manifest, read_rows, store_properties
+from ..checkpoint.files import is_operator_metadata_v2, point_schema_paths_at
 from ..checkpoint.logs import (
     PROVIDER_CONF,
     format_offsets,
@@ -51,7 +52,7 @@ from .common import (
     read_back_digest,
     run_tasks,
 )
-from .convert import _write_with_crc, target_names
+from .convert import _write_with_crc, crc_rel, target_names
 
 _OFFSET_FILE = re.compile(r"^offsets/(\d+)$")
 _OFFSET_CRC = re.compile(r"^offsets/\.(\d+)\.crc$")
@@ -107,12 +108,14 @@ class ImportResult:
 def run_import_task(task: ImportTask) -> ImportResult:
     """Write one store partition from its Parquet file and prove it by reading it back."""
     p = provider_for(task.provider)
+    props = store_properties(task.archive, task.data_file)  # what the rows cannot carry
+    p.check_writable(props, task.archive.describe(task.data_file.path))
     stream = DigestingIterator(read_rows(task.archive, task.data_file))
-    wctx = WriteContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, write_crc=task.write_crc)
+    wctx = WriteContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, write_crc=task.write_crc, extra=props)
     written = p.write(task.target, task.version, stream, wctx)
     for _ in stream:  # a writer that stopped early leaves rows unread: count them, so it shows
         pass
-    rctx = ReadContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key)
+    rctx = ReadContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, extra=props)
     back = digest_batches(p.read(task.target, task.version, rctx))
     d = task.data_file
     return ImportResult(d.operator, d.store, d.partition, d.digest, stream.digest, back, tuple(written))
@@ -238,8 +241,13 @@ def _publish(archive: Location, dst: Location, files: _Files, target_class: str,
         dst.write_bytes(rel, data)
         out.append({"path": rel, "bytes": len(data), "action": "copy"})
 
+    moved = {rel for rel in files.early if is_operator_metadata_v2(rel)}  # schema paths point at dst
     for rel in files.early:
-        copy(rel)
+        if rel in moved:
+            data = point_schema_paths_at(_archived(archive, rel), dst, archive.describe(f"{CHECKPOINT_DIR}/{rel}"))
+            out += _write_with_crc(dst, rel, data, crc_rel(rel) in files.early)
+        elif rel not in {crc_rel(m) for m in moved}:
+            copy(rel)
     for rel, batch, had_crc in files.offsets:
         entry = parse_offsets(_archived(archive, rel).decode("utf-8"), batch, archive.describe(f"{CHECKPOINT_DIR}/{rel}"))
         data = format_offsets(with_conf(entry, {PROVIDER_CONF: target_class})).encode("utf-8")
@@ -288,6 +296,11 @@ def import_archive(
         rel = store_rel(d.operator, d.store, d.partition)
         tasks.append(ImportTask(archive, d, StoreDir(dst, rel, d.operator, d.partition, d.store), target.name,
                                 manifest.state_version, write_conf, prefix, dst.is_local))
+    seen: set[tuple[int, str]] = set()
+    for d in manifest.data_files:  # refuse stores the target cannot hold before anything is written
+        if (d.operator, d.store) not in seen:
+            seen.add((d.operator, d.store))
+            target.check_writable(store_properties(archive, d), archive.describe(d.path))
     on_plan(len(tasks))
     if dry_run:
         for t in tasks:

@@ -12,6 +12,12 @@ one-byte encoding-version prefix removed; see ``rocksdb.py``).
   Never writes to the source location.
 * ``write(store, version, batches, ctx)``: write that version from batches; returns the relative
   paths it created (so the caller can publish / clean up / verify).
+* ``store_properties(store, version, ctx)``: facts about one store version that its rows cannot
+  carry but a writer needs (string keys and values; ``{}`` for most stores): the key schema of a
+  prefix-key store (:data:`KEY_SCHEMA`), the column-family table of a RocksDB store that uses
+  column families (:data:`COLUMN_FAMILIES`). Callers pass them to the writer and to the reader
+  of the written target as ``ctx.extra``; ``check_writable`` refuses, before anything is
+  written, a store the layout cannot hold.
 """
 
 from __future__ import annotations
@@ -23,10 +29,15 @@ from typing import Any
 
 import pyarrow as pa
 
+from ..errors import Unsupported
 from ..storage import Entry, Location
 
 ROW_SCHEMA = pa.schema([pa.field("key", pa.binary(), nullable=False), pa.field("value", pa.binary(), nullable=False)])
 BATCH_ROWS = 65536
+#: store property: the key schema (engine JSON) of a store with a prefix key (numColsPrefixKey > 0)
+KEY_SCHEMA = "key_schema"
+#: store property: the column-family table (JSON) of a RocksDB store that uses column families
+COLUMN_FAMILIES = "rocksdb.column_families"
 
 
 @dataclass(frozen=True)
@@ -50,6 +61,7 @@ class ReadContext:
     conf: dict[str, str] = field(default_factory=dict)
     num_cols_prefix_key: int = 0
     listing: dict[str, Entry] | None = None  # the store dir listing if the caller has it
+    extra: dict[str, str] = field(default_factory=dict)  # store properties, when the files cannot tell
 
     @property
     def codec(self) -> str:
@@ -101,6 +113,27 @@ class Provider(ABC):
     def source_files(self, store: StoreDir, version: int, ctx: ReadContext) -> list[WrittenFile]:
         """The files that ``read`` would read for ``version`` (for the dry-run plan)."""
         return []
+
+    #: whether this layout can hold a store whose rows live in several column families
+    supports_column_families: bool = False
+
+    def store_properties(self, store: StoreDir, version: int, ctx: ReadContext) -> dict[str, str]:
+        """Facts about ``version`` of ``store`` that a writer needs besides the rows (see above)."""
+        from .facts import key_schema_property
+
+        return key_schema_property(store, ctx, version)
+
+    def check_writable(self, props: dict[str, str], where: str) -> None:
+        """Refuse (:class:`~migrate.errors.Unsupported`) a store this layout cannot hold."""
+        if props.get(COLUMN_FAMILIES) and not self.supports_column_families:
+            raise Unsupported(
+                "this store keeps its state in RocksDB column families (the engine's per-key state API, "
+                "transformWithState: value, list and map state, timers, TTL); the "
+                f"{self.name or type(self).__name__} provider keeps one plain key-value map per store and cannot "
+                "hold column families, and the engine refuses transformWithState on it "
+                "(STORE_BACKEND_NOT_SUPPORTED_FOR_TWS); convert it to rocksdb instead",
+                where,
+            )
 
 
 def batches_from_pairs(pairs: Iterable[tuple[bytes, bytes]], rows: int = BATCH_ROWS) -> Iterator[pa.RecordBatch]:

@@ -224,3 +224,64 @@ def _add_member(archive: zipfile.ZipFile, name: str, data: bytes, stamp: tuple[i
     info.create_system = 0
     info.external_attr = 0
     archive.writestr(info, data)
+
+
+# ------------------------------------------------------------------------ column families
+@dataclass(frozen=True)
+class ColumnFamilies:
+    """The column-family table of a store (observed with transformWithState on Spark 4.3.0).
+
+    All families live in RocksDB's default column family; each key starts with its family id as
+    a 2-byte little-endian short (``mapping``: name -> id, ``default`` is 1 when present);
+    ``internal`` marks the engine's own families (names starting with ``$``: timers, TTL
+    indexes, list counters); their rows count in ``numInternalKeys``, the others in ``numKeys``.
+    """
+
+    mapping: dict[str, int]
+    internal: dict[str, bool]
+    max_id: int
+
+    def to_json(self) -> str:
+        return json.dumps(
+            {"columnFamilyMapping": self.mapping, "columnFamilyTypeMap": self.internal, "maxColumnFamilyId": self.max_id},
+            separators=(",", ":"),
+        )
+
+    def internal_ids(self) -> set[int]:
+        return {i for name, i in self.mapping.items() if self.internal.get(name, False)}
+
+
+def column_families(meta: VersionMetadata, where: str) -> ColumnFamilies | None:
+    """The table of a version that uses column families, else None (checked)."""
+    if not (meta.column_family_mapping or meta.column_family_type_map or meta.max_column_family_id):
+        return None
+    return _check_families(meta.column_family_mapping, meta.column_family_type_map, meta.max_column_family_id, where)
+
+
+def parse_column_families(text: str, where: str) -> ColumnFamilies:
+    """The table from its ``to_json`` form (a store property)."""
+    try:
+        obj = json.loads(text)
+    except ValueError as exc:
+        raise CorruptInput(f"the column-family table does not parse ({exc})", where) from None
+    if not isinstance(obj, dict):
+        raise CorruptInput("the column-family table is not a JSON object", where)
+    return _check_families(obj.get("columnFamilyMapping"), obj.get("columnFamilyTypeMap"), obj.get("maxColumnFamilyId"), where)
+
+
+def _check_families(mapping: Any, types: Any, max_id: Any, where: str) -> ColumnFamilies:
+    if not isinstance(mapping, dict) or not isinstance(types, dict):
+        raise CorruptInput("column-family mapping or type map is not an object", where)
+    if isinstance(max_id, bool) or not isinstance(max_id, int) or not 0 <= max_id < 1 << 16:
+        raise CorruptInput(f"maxColumnFamilyId {max_id!r} is not a 2-byte id", where)
+    seen: dict[int, str] = {}
+    for name, cf_id in mapping.items():
+        if isinstance(cf_id, bool) or not isinstance(cf_id, int) or not 0 <= cf_id <= max_id:
+            raise CorruptInput(f"column family {name!r} has id {cf_id!r}, not in 0..maxColumnFamilyId={max_id}", where)
+        if cf_id in seen:
+            raise CorruptInput(f"column families {seen[cf_id]!r} and {name!r} share id {cf_id}", where)
+        seen[cf_id] = name
+    for name, flag in types.items():
+        if name not in mapping or not isinstance(flag, bool):
+            raise CorruptInput(f"column-family type map entry {name!r}: {flag!r} does not match the mapping", where)
+    return ColumnFamilies(dict(mapping), dict(types), max_id)

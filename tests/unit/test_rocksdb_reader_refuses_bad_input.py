@@ -112,14 +112,26 @@ def test_missing_metadata_or_current_is_corrupt(tmp_path: Path) -> None:
         _read(part, 3)
 
 
-def test_column_families_are_unsupported(tmp_path: Path) -> None:
+def test_column_family_table_that_does_not_fit_is_corrupt(tmp_path: Path) -> None:
+    # column families are read (see test_rocksdb_changelog_*); a table whose ids exceed
+    # maxColumnFamilyId, or keys whose 2-byte family id the table does not list, are refused
     part = _engine_copy(tmp_path)
     _rezip(
         part / "3.zip",
         lambda m: m.update(metadata=m["metadata"].replace(b'"columnFamilyMapping":{}', b'"columnFamilyMapping":{"default":0,"x":1}')),
     )
-    with pytest.raises(Unsupported, match="column families"):
+    with pytest.raises(CorruptInput, match="has id 1, not in 0..maxColumnFamilyId=0"):
         _read(part, 3)
+    _rezip(
+        part / "2.zip",
+        lambda m: m.update(
+            metadata=m["metadata"]
+            .replace(b'"columnFamilyMapping":{}', b'"columnFamilyMapping":{"x":9}')
+            .replace(b'"maxColumnFamilyId":0', b'"maxColumnFamilyId":9')
+        ),
+    )
+    with pytest.raises(CorruptInput, match="column-family id 0, which the column-family table does not list"):
+        _read(part, 2)
 
 
 def test_missing_version_and_version_zero(tmp_path: Path) -> None:

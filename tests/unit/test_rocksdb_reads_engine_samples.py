@@ -15,7 +15,6 @@ from pathlib import Path
 
 import pytest
 
-from migrate.errors import Unsupported
 from migrate.providers.base import ROW_SCHEMA, ReadContext, StoreDir
 from migrate.providers.rocksdb import RocksDBProvider
 from migrate.storage import open_location
@@ -97,20 +96,24 @@ def test_engine_empty_partition_reads_as_no_rows() -> None:
     assert _read(store, 3) == []
 
 
-def test_changelog_only_version_is_refused_by_name() -> None:
+def test_changelog_only_versions_are_listed_and_rebuilt() -> None:
+    # this partition never received a row: every changelog is just the end marker
     store = _store(FIXTURES / "changelog_p0")
     provider = RocksDBProvider()
     listing = store.location.list_dir("")
-    assert provider.versions(listing) == []
-    assert provider.changelog_versions(listing) == [1, 2, 3]
-    with pytest.raises(Unsupported, match=r"changelog checkpoints are not supported yet.*2\.changelog"):
-        _read(store, 2)
+    assert provider.snapshot_versions(listing) == []
+    assert provider.versions(listing) == provider.changelog_versions(listing) == [1, 2, 3]
+    assert provider.plan(store, 2, listing) == (None, ["1.changelog", "2.changelog"])
+    assert _read(store, 2) == []
 
 
-def test_changelog_version_is_not_answered_with_an_older_zip(tmp_path: Path) -> None:
+def test_changelog_after_a_zip_is_applied_not_ignored(tmp_path: Path) -> None:
+    from migrate.codecs import codec_for
+    from migrate.providers.rocksdb_changelog import DELETE, Record, render_changelog
+
     part = tmp_path / "p"
     shutil.copytree(FIXTURES / "agg_p0", part)
-    shutil.copy(FIXTURES / "changelog_p0" / "3.changelog", part / "4.changelog")
-    with pytest.raises(Unsupported, match=r"4\.changelog"):
-        _read(_store(part), 4)
-    assert sorted(_read(_store(part), 3)) == expected_rows(3)  # a version with a zip still reads
+    gone = b"\x00" + row("key0")  # the RocksDB key: version byte + key row
+    (part / "4.changelog").write_bytes(codec_for("lz4").compress(render_changelog([Record(DELETE, gone, None)])))
+    assert sorted(_read(_store(part), 4)) == [r for r in expected_rows(3) if r[0] != row("key0")]
+    assert sorted(_read(_store(part), 3)) == expected_rows(3)  # a version with a zip still reads from it

@@ -1,0 +1,209 @@
+"""The RocksDB work itself, through the ``rocksdict`` binding (its bundled RocksDB 9.8.4 is the
+engine's): options matching the engine's table files, iterating a restored checkpoint, applying
+changelogs, and building a new checkpoint from sorted runs.
+
+Everything here works in a local temporary folder the caller owns; nothing touches the source.
+Rows here are RocksDB bytes (see ``rocksdb_keys.RowCodec`` for the canonical form).
+
+Merge operands (list state of transformWithState) are resolved by RocksDB's own string-append
+merge operator, which rocksdict takes from the checkpoint's ``OPTIONS`` file (observed: without
+that line a key with operands reads as an error). The engine's operator joins operands with no
+delimiter when ``mergeOperatorVersion=2``, but its ``OPTIONS`` file names only
+``StringAppendOperator``, whose default delimiter is ``,``; :func:`set_merge_delimiter` writes
+the engine's delimiter into that line of the restored copy (the operator's ``delimiter`` option).
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable, Iterable, Iterator
+
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from ..errors import CorruptInput, Unsupported
+from .base import BATCH_ROWS
+
+FORMAT_VERSION_CONF = "spark.sql.streaming.stateStore.rocksdb.formatVersion"
+COMPRESSION_CONF = "spark.sql.streaming.stateStore.rocksdb.compression"
+BLOCK_SIZE_CONF = "spark.sql.streaming.stateStore.rocksdb.blockSizeKB"
+_COMPRESSIONS = {"none": "none", "no": "none", "snappy": "snappy", "zlib": "zlib", "bzip2": "bz2",
+                 "lz4": "lz4", "lz4hc": "lz4hc", "zstd": "zstd"}  # fmt: skip
+_MERGE_LINE = b"merge_operator=StringAppendOperator"
+
+
+def _format_version(conf: dict[str, str], where: str) -> int:
+    raw = conf.get(FORMAT_VERSION_CONF, "5")
+    try:
+        value = int(raw)
+    except ValueError:
+        raise Unsupported(f"{FORMAT_VERSION_CONF}={raw!r} is not an integer", where) from None
+    if not 2 <= value <= 6:  # table format versions RocksDB 9.8 writes (common practice: 5 is the default)
+        raise Unsupported(f"{FORMAT_VERSION_CONF}={value} is not a table format version RocksDB 9.8 writes (2..6)", where)
+    return value
+
+
+def db_options(conf: dict[str, str], where: str):  # -> rocksdict.Options
+    """Options for the table files we write, matching the engine's OPTIONS file (observed)."""
+    from rocksdict import BlockBasedOptions, ChecksumType, DBCompressionType, Options
+
+    table = BlockBasedOptions()
+    table.set_format_version(_format_version(conf, where))
+    table.set_bloom_filter(10, False)  # engine: filter_policy=bloomfilter:10:false
+    table.set_checksum_type(ChecksumType.xxh3())  # engine: checksum=kXXH3
+    try:
+        block_kb = int(conf.get(BLOCK_SIZE_CONF, "4"))
+    except ValueError:
+        raise Unsupported(f"{BLOCK_SIZE_CONF}={conf.get(BLOCK_SIZE_CONF)!r} is not an integer", where) from None
+    table.set_block_size(block_kb * 1024)
+    codec = conf.get(COMPRESSION_CONF, "lz4").strip().lower()
+    if codec not in _COMPRESSIONS:
+        raise Unsupported(f"{COMPRESSION_CONF}={codec!r} is not a known RocksDB compression", where)
+    options = Options(raw_mode=True)
+    options.create_if_missing(True)
+    options.set_block_based_table_factory(table)
+    options.set_compression_type(getattr(DBCompressionType, _COMPRESSIONS[codec])())
+    return options
+
+
+def set_merge_delimiter(db_dir: str, delimiter: bytes) -> None:
+    """Give the string-append merge operator of a restored checkpoint the engine's delimiter."""
+    if delimiter == b",":
+        return  # the operator's default
+    if b";" in delimiter or b"}" in delimiter or b"\n" in delimiter:
+        raise Unsupported(f"merge delimiter {delimiter!r} cannot be written into an OPTIONS file")
+    for name in os.listdir(db_dir):
+        if not name.startswith("OPTIONS-"):
+            continue
+        path = os.path.join(db_dir, name)
+        with open(path, "rb") as f:
+            text = f.read()
+        lines = [
+            b"".join((line[: line.index(_MERGE_LINE)], b"merge_operator={id=StringAppendOperator;delimiter=", delimiter, b"}"))
+            if line.strip() == _MERGE_LINE
+            else line
+            for line in text.split(b"\n")
+        ]
+        with open(path, "wb") as f:
+            f.write(b"\n".join(lines))
+
+
+# ------------------------------------------------------------------------ reading
+def open_for_replay(db_dir: str, where: str):  # -> rocksdict.Rdict
+    """The restored checkpoint in ``db_dir`` opened for writing (a fresh, empty one if none)."""
+    from rocksdict import Options, Rdict
+
+    options = Options(raw_mode=True)
+    options.create_if_missing(True)
+    try:
+        return Rdict(db_dir, options=options)
+    except Exception as exc:  # rocksdict raises plain Exception with the RocksDB status text
+        raise CorruptInput(f"RocksDB refuses to open this version: {exc}", where) from exc
+
+
+def iterate(db_dir: str, where: str) -> Iterator[tuple[pa.Array, pa.Array]]:
+    """Every (key, value) of the RocksDB in ``db_dir`` in key order, as raw binary arrays.
+
+    Uses the raw iterator and checks its status at the end: the ``items()`` view of rocksdict
+    stops silently on a corrupt block (seen: a flipped block yields half the keys, no error).
+    """
+    from rocksdict import AccessType, Options, Rdict
+
+    try:
+        db = Rdict(db_dir, options=Options(raw_mode=True), access_type=AccessType.read_only())
+    except Exception as exc:
+        raise CorruptInput(f"RocksDB refuses to open this version: {exc}", where) from exc
+    try:
+        it = db.iter()
+        it.seek_to_first()
+        while True:
+            keys: list[bytes] = []
+            values: list[bytes] = []
+            while len(keys) < BATCH_ROWS and it.valid():
+                keys.append(it.key())
+                values.append(it.value())
+                it.next()
+            if not keys:
+                break
+            yield pa.array(keys, pa.binary()), pa.array(values, pa.binary())
+        try:
+            it.status()
+        except Exception as exc:
+            raise CorruptInput(f"RocksDB read failed: {exc}", where) from exc
+        del it
+    finally:
+        db.close()
+
+
+# ------------------------------------------------------------------------ writing
+Encoder = Callable[[pa.RecordBatch], tuple[pa.Array, pa.Array]]
+
+
+def sorted_runs(
+    batches: Iterable[pa.RecordBatch], encode: Encoder, options, tmp: str, run_bytes: int, where: str,
+    on_keys: Callable[[pa.Array], None] = lambda keys: None,
+) -> tuple[list[str], int]:
+    """Write the rows as sorted SST runs of about ``run_bytes`` each; return (paths, row count)."""
+    runs: list[str] = []
+    keys: list[pa.Array] = []
+    values: list[pa.Array] = []
+    buffered = 0
+    rows = 0
+    for batch in batches:
+        if batch.num_rows == 0:
+            continue
+        k, v = batch.column("key"), batch.column("value")
+        if k.null_count or v.null_count:
+            raise CorruptInput("a row to write has a null key or value", where)
+        k, v = encode(batch)
+        on_keys(k)
+        keys.append(k)
+        values.append(v)
+        rows += batch.num_rows
+        buffered += keys[-1].nbytes + values[-1].nbytes
+        if buffered >= run_bytes:
+            runs.append(_write_run(keys, values, options, os.path.join(tmp, f"run-{len(runs)}.sst"), where))
+            keys, values, buffered = [], [], 0
+    if keys:
+        runs.append(_write_run(keys, values, options, os.path.join(tmp, f"run-{len(runs)}.sst"), where))
+    return runs, rows
+
+
+def _write_run(keys: list[pa.Array], values: list[pa.Array], options, path: str, where: str) -> str:
+    from rocksdict import SstFileWriter
+
+    k = pa.concat_arrays(keys)
+    v = pa.concat_arrays(values)
+    order = pc.sort_indices(k)  # byte-wise order, as RocksDB's default comparator
+    k, v = k.take(order), v.take(order)
+    if len(k) > 1 and pc.any(pc.equal(k.slice(1), k.slice(0, len(k) - 1))).as_py():
+        raise CorruptInput("the rows to write carry the same key twice", where)
+    writer = SstFileWriter(options=options)
+    writer.open(path)
+    for start in range(0, len(k), BATCH_ROWS):
+        for key, value in zip(k.slice(start, BATCH_ROWS).to_pylist(), v.slice(start, BATCH_ROWS).to_pylist()):
+            writer[key] = value
+    writer.finish()
+    return path
+
+
+def build_db(runs: list[str], rows: int, options, tmp: str, where: str) -> str:
+    """Ingest the runs into a fresh RocksDB and take a checkpoint of it; return the checkpoint dir."""
+    from rocksdict import Checkpoint, IngestExternalFileOptions, Rdict
+
+    db = Rdict(os.path.join(tmp, "db"), options=options)
+    try:
+        ingest = IngestExternalFileOptions()
+        ingest.set_move_files(True)
+        for run in runs:
+            db.ingest_external_file([run], ingest)
+        if len(runs) > 1:
+            db.compact_range(None, None)  # one sorted, non-overlapping set of table files
+            stored = sum(int(f["num_entries"]) for f in db.live_files())
+            if stored != rows:
+                raise CorruptInput(f"the rows to write carry duplicate keys ({rows} rows, {stored} distinct)", where)
+        checkpoint = os.path.join(tmp, "checkpoint")
+        Checkpoint(db).create_checkpoint(checkpoint)
+        return checkpoint
+    finally:
+        db.close()
