@@ -34,7 +34,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from . import measure
+from . import measure, rowgen
 from .generate import DATA, Params
 
 HERE = Path(__file__).resolve().parent
@@ -320,7 +320,7 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(prog="python -m benchmarks.run", description=__doc__.split("\n\n")[0])
     ap.add_argument("--keys", type=int, default=1_000_000)
     ap.add_argument("--partitions", default="64", help="one count or a comma list (e.g. 16,256 for the memory check)")
-    ap.add_argument("--shape", default="narrow", help="narrow | wide (see benchmarks/rowgen.py)")
+    ap.add_argument("--shape", default="narrow", choices=rowgen.SHAPES, help="row shape (see benchmarks/rowgen.py)")
     ap.add_argument("--deltas", type=int, default=4)
     ap.add_argument("--seed", type=int, default=20261202)
     ap.add_argument("--cases", default=",".join(CASES), help=f"comma list of: {', '.join(CASES)}")
