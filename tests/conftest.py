@@ -108,7 +108,7 @@ class RequestLog:
 
 @dataclass
 class S3Endpoint:
-    """What a test needs to talk to the loopback S3 server."""
+    """What a test needs to reach the loopback S3 server."""
 
     url: str
     key: str

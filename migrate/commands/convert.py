@@ -42,7 +42,6 @@ from .common import (
     checked_jobs,
     digest_partition,
     guard_target,
-    prepare_target,
     refuse_unwritable,
     reverify_partition,
     run_partition,
@@ -227,9 +226,6 @@ def run_journaled(
     def key_of(t: PartitionTask) -> str:
         return journal.key(t.source.operator_id, t.source.store_name, t.source.partition)
 
-    def result_key(r: PartitionResult) -> str:
-        return journal.key(r.operator_id, r.store_name, r.partition)
-
     results, _ = journal.run_with_journal(
         dst,
         identity,
@@ -238,14 +234,10 @@ def run_journaled(
         target_rel=lambda t: t.target.rel,
         reverify=reverify_partition,
         run=lambda todo, on_done: run_tasks(todo, run_partition, jobs, on_done),
-        result_key=result_key,
         result_digest=lambda r: r.source_digest,
-        result_ok=lambda r: r.ok,
-        result_files=lambda r: [w.rel for w in r.written],
         resume=resume,
         overwrite=overwrite,
         progress=progress,
-        prepare=prepare_target,
     )
     bad = [r for r in results if not r.ok]
     if bad:

@@ -48,7 +48,6 @@ from .common import (
     add_target_arguments,
     checked_jobs,
     guard_target,
-    prepare_target,
     read_back_digest,
     run_tasks,
 )
@@ -326,9 +325,6 @@ def import_archive(
     def key_of(t: ImportTask) -> str:
         return journal.key(t.data_file.operator, t.data_file.store, t.data_file.partition)
 
-    def result_key(r: ImportResult) -> str:
-        return journal.key(r.operator_id, r.store_name, r.partition)
-
     results, state = journal.run_with_journal(
         dst,
         identity,
@@ -337,14 +333,10 @@ def import_archive(
         target_rel=lambda t: t.target.rel,
         reverify=_reverify,
         run=lambda todo, on_done: run_tasks(todo, run_import_task, jobs, on_done),  # type: ignore[arg-type]
-        result_key=result_key,
         result_digest=lambda r: r.expected,
-        result_ok=lambda r: r.ok,
-        result_files=lambda r: [w.rel for w in r.written],
         resume=resume,
         overwrite=overwrite,
         progress=progress,
-        prepare=prepare_target,
     )
     if report.new_query_id:  # a resumed clone keeps the identity its first attempt chose
         report.new_query_id = state.setdefault("chosen_query_id", report.new_query_id)

@@ -10,16 +10,36 @@ from __future__ import annotations
 
 import json
 from collections.abc import Callable
-from typing import Any, TypeVar
+from typing import Any, Protocol, TypeVar
 
 from .. import faults
 from ..checkpoint.model import INCOMPLETE_PREFIX, JOURNAL_DIR
 from ..digest import Digest
 from ..errors import CorruptInput, UnsafeTarget
+from ..providers.base import WrittenFile
 from ..storage import Location
+from .common import prepare_target
 
 T = TypeVar("T")
-R = TypeVar("R")
+
+
+class Outcome(Protocol):
+    """What both convert's and import's per-partition results offer the journal."""
+
+    operator_id: int
+    store_name: str
+    partition: int
+    written: tuple[WrittenFile, ...]
+
+    @property
+    def ok(self) -> bool: ...
+
+
+R = TypeVar("R", bound=Outcome)
+
+
+def result_key(r: Outcome) -> str:
+    return key(r.operator_id, r.store_name, r.partition)
 
 JOURNAL = f"{JOURNAL_DIR}/journal.json"
 
@@ -73,14 +93,10 @@ def run_with_journal(
     target_rel: Callable[[T], str],
     reverify: Callable[[T, Digest], R | None],
     run: Callable[[list[T], Callable[[R], None]], list[R]],
-    result_key: Callable[[R], str],
     result_digest: Callable[[R], Digest],
-    result_ok: Callable[[R], bool],
-    result_files: Callable[[R], list[str]],
     resume: bool,
     overwrite: bool,
     progress: Callable[[R], None],
-    prepare: Callable[[Location, bool], None],
 ) -> tuple[list[R], dict[str, Any]]:
     """Run per-partition tasks into ``dst`` keeping the journal; returns results in task order.
 
@@ -91,7 +107,7 @@ def run_with_journal(
     if resume:
         state = resume_journal(dst, identity)
     else:
-        prepare(dst, overwrite)
+        prepare_target(dst, overwrite)
         state = start(dst, identity)
     done: dict[str, R] = {}
     todo: list[T] = []
@@ -108,8 +124,8 @@ def run_with_journal(
         todo.append(t)
 
     def finished(r: R) -> None:
-        if result_ok(r):
-            state["partitions"][result_key(r)] = {"digest": result_digest(r).to_json(), "files": result_files(r)}
+        if r.ok:
+            state["partitions"][result_key(r)] = {"digest": result_digest(r).to_json(), "files": [w.rel for w in r.written]}
             save(dst, state)
         progress(r)
         faults.reached("partition-written")

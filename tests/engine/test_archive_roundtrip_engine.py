@@ -15,19 +15,20 @@ the provider its checkpoint names. The proof:
 
 from __future__ import annotations
 
-import hashlib
 import json
-import os
-import re
 import shutil
 import subprocess
-import sys
 from pathlib import Path
 
 import pytest
 import scenarios as sc
+from test_convert_roundtrip_engine import (
+    assert_new_versions_written_by,
+    describe,
+    run_cli,
+    tree_digest,
+)
 
-REPO = Path(__file__).resolve().parents[2]
 FIRST_RUN_FILES = 3
 TOTAL_FILES = 5
 OTHER = {"hdfs": "rocksdb", "rocksdb": "hdfs"}
@@ -39,24 +40,9 @@ CASES = [
 ]
 
 
-def tree_digest(root: Path) -> dict[str, str]:
-    out: dict[str, str] = {}
-    for dirpath, dirnames, filenames in os.walk(root):
-        base = Path(dirpath)
-        for d in dirnames:
-            out[str((base / d).relative_to(root)) + "/"] = "<dir>"
-        for f in filenames:
-            p = base / f
-            out[str(p.relative_to(root))] = hashlib.sha256(p.read_bytes()).hexdigest()
-    return out
-
-
-def run_cli(*args: str) -> subprocess.CompletedProcess:
-    env = dict(os.environ)
-    env["PYTHONPATH"] = os.pathsep.join(p for p in (str(REPO), env.get("PYTHONPATH")) if p)
-    proc = subprocess.run([sys.executable, "-m", "migrate", *args], cwd=REPO, env=env,
-                          capture_output=True, text=True, timeout=600, check=False)
-    assert proc.returncode == 0, f"{args!r} exited {proc.returncode}\n{proc.stdout}\n{proc.stderr}"
+def ok_cli(*args: str) -> subprocess.CompletedProcess:
+    proc = run_cli(*args)
+    assert proc.returncode == 0, describe(proc)
     return proc
 
 
@@ -66,22 +52,6 @@ def offsets_providers(checkpoint: Path) -> dict[int, str]:
         if p.name.isdigit():
             out[int(p.name)] = json.loads(p.read_text().splitlines()[1])["conf"].get(sc.PROVIDER_CONF)
     return out
-
-
-def assert_versions_written_by(checkpoint: Path, provider: str, versions: range) -> None:
-    stores = [part for op in (checkpoint / "state").iterdir() if op.name.isdigit()
-              for part in op.iterdir() if part.name.isdigit()]
-    assert stores, f"{checkpoint}: no store partition directories"
-    for store in stores:
-        names = [p.name for p in store.iterdir() if p.is_file()]
-        for v in versions:
-            # observed engine naming: "<v>.zip" or "<v>_<id>.zip" (RocksDB), "<v>.delta" (heap map)
-            zips = [n for n in names if re.fullmatch(rf"{v}(_[0-9a-f-]+)?\.zip", n)]
-            deltas = [n for n in names if n == f"{v}.delta"]
-            if provider == "rocksdb":
-                assert zips and not deltas, f"{store}: version {v} not written by RocksDB ({sorted(names)})"
-            else:
-                assert deltas and not zips, f"{store}: version {v} not written by the heap map ({sorted(names)})"
 
 
 @pytest.mark.parametrize(("scenario_name", "source"), CASES)
@@ -98,7 +68,7 @@ def test_restored_checkpoints_continue_like_the_original(spark, tmp_path, scenar
     shutil.copytree(src, control)
 
     archive = tmp_path / "archive"
-    exported = json.loads(run_cli("export", str(src), str(archive), "--json").stdout)
+    exported = json.loads(ok_cli("export", str(src), str(archive), "--json").stdout)
     assert exported["batch"] == last_batch and exported["rows"] > 0
     archived = tree_digest(archive)
 
@@ -107,7 +77,7 @@ def test_restored_checkpoints_continue_like_the_original(spark, tmp_path, scenar
     for to, new_id in restores:
         dst = tmp_path / f"restored-{to}{'-clone' if new_id else ''}"
         args = ["import", str(archive), str(dst), "--to", to, "--json"] + (["--new-query-id"] if new_id else [])
-        report = json.loads(run_cli(*args).stdout)
+        report = json.loads(ok_cli(*args).stdout)
         assert report["verified"] is True
         original_id = json.loads((src / "metadata").read_text())["id"]
         assert (json.loads((dst / "metadata").read_text())["id"] != original_id) == new_id
@@ -121,13 +91,13 @@ def test_restored_checkpoints_continue_like_the_original(spark, tmp_path, scenar
     assert min(control_out) > last_batch, "the control restart re-ran old batches"
     control_last = sc.batch_ids_in_commits(control)[-1]
     new_versions = range(last_batch + 2, control_last + 2)
-    assert_versions_written_by(control, source, new_versions)  # the harness itself
+    assert_new_versions_written_by(control, source, new_versions)  # the harness itself
 
     for dst, to, new_id in restored:
         out = scenario.sorted_batches(sc.run_query(spark, scenario, input_dir, dst, None))
         assert out == control_out, f"{dst.name}: continued output differs from the control"
         assert sc.batch_ids_in_commits(dst)[-1] == control_last
-        assert_versions_written_by(dst, to, new_versions)
+        assert_new_versions_written_by(dst, to, new_versions)
         assert set(offsets_providers(dst).values()) == {sc.PROVIDERS[to]}, f"{dst.name}: offsets name another provider"
 
     assert tree_digest(src) == before

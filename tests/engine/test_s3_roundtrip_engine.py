@@ -19,64 +19,29 @@ Nothing here reads state through the engine; the engine only runs queries.
 
 from __future__ import annotations
 
-import hashlib
 import json
-import os
-import re
 import shutil
 import subprocess
-import sys
-from pathlib import Path
 
 import pytest
 import scenarios as sc
+from test_convert_roundtrip_engine import (
+    assert_new_versions_written_by,
+    describe,
+    offsets_entries,
+    run_cli,
+    tree_digest,
+)
 
-REPO = Path(__file__).resolve().parents[2]
 OTHER = {"hdfs": "rocksdb", "rocksdb": "hdfs"}
 FIRST_RUN_FILES = 3
 TOTAL_FILES = 5
 
 
 def _cli(*args: str) -> subprocess.CompletedProcess:
-    env = dict(os.environ)
-    env["PYTHONPATH"] = os.pathsep.join(p for p in (str(REPO), env.get("PYTHONPATH")) if p)
-    proc = subprocess.run(
-        [sys.executable, "-m", "migrate", *args], cwd=REPO, env=env, capture_output=True, text=True, timeout=600, check=False
-    )
-    assert proc.returncode == 0, f"{args[:3]} exited {proc.returncode}\n--- stdout\n{proc.stdout}\n--- stderr\n{proc.stderr}"
+    proc = run_cli(*args)
+    assert proc.returncode == 0, describe(proc)
     return proc
-
-
-def _tree_digest(root: Path) -> dict[str, str]:
-    return {str(p.relative_to(root)): hashlib.sha256(p.read_bytes()).hexdigest() for p in sorted(root.rglob("*")) if p.is_file()}
-
-
-def _offsets_provider_classes(checkpoint: Path) -> dict[int, str | None]:
-    out = {}
-    for path in (checkpoint / "offsets").iterdir():
-        if path.name.isdigit():
-            out[int(path.name)] = json.loads(path.read_text().splitlines()[1])["conf"].get(sc.PROVIDER_CONF)
-    return out
-
-
-def _store_dirs(checkpoint: Path) -> list[Path]:
-    state = checkpoint / "state"
-    return sorted(part for op in state.iterdir() if op.name.isdigit() for part in op.iterdir() if part.name.isdigit())
-
-
-def _assert_versions_written_by(checkpoint: Path, provider: str, versions: range) -> None:
-    stores = _store_dirs(checkpoint)
-    assert stores, f"{checkpoint}: no state/<op>/<partition> directories"
-    for store in stores:
-        names = {p.name for p in store.iterdir() if p.is_file()}
-        for v in versions:
-            # observed engine names: "<v>.zip" (RocksDB) and "<v>.delta" (heap map)
-            has_zip = any(re.fullmatch(rf"{v}(_[0-9a-f-]+)?\.zip", n) for n in names)
-            has_delta = f"{v}.delta" in names
-            if provider == "rocksdb":
-                assert has_zip and not has_delta, f"{store}: version {v} not written by RocksDB ({sorted(names)})"
-            else:
-                assert has_delta and not has_zip, f"{store}: version {v} not written by the heap map ({sorted(names)})"
 
 
 @pytest.mark.parametrize("source", ["hdfs", "rocksdb"], ids=lambda s: f"{s}-to-{OTHER[s]}")
@@ -91,7 +56,7 @@ def test_checkpoint_converted_on_s3_continues_like_the_original(spark, s3_server
     assert first, "the first run produced no output rows"
     last_batch = sc.batch_ids_in_commits(local_src)[-1]
     converted_version = last_batch + 1  # state version n is written by batch n - 1
-    local_before = _tree_digest(local_src)
+    local_before = tree_digest(local_src)
     control = tmp_path / "control"
     shutil.copytree(local_src, control)
 
@@ -127,10 +92,10 @@ def test_checkpoint_converted_on_s3_continues_like_the_original(spark, s3_server
     new_last = sc.batch_ids_in_commits(converted)[-1]
     assert new_last == sc.batch_ids_in_commits(control)[-1] > last_batch
     new_versions = range(converted_version + 1, new_last + 2)
-    _assert_versions_written_by(converted, target, new_versions)
-    _assert_versions_written_by(control, source, new_versions)  # the harness itself
-    classes = _offsets_provider_classes(converted)
+    assert_new_versions_written_by(converted, target, new_versions)
+    assert_new_versions_written_by(control, source, new_versions)  # the harness itself
+    classes = {b: m["conf"].get(sc.PROVIDER_CONF) for b, m in offsets_entries(converted).items()}
     assert classes and set(classes.values()) == {sc.PROVIDERS[target]}, classes
 
     # (3) the local original is untouched too
-    assert _tree_digest(local_src) == local_before
+    assert tree_digest(local_src) == local_before
