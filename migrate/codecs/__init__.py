@@ -10,7 +10,11 @@ pinned in each offsets-log entry's conf). Each codec is one module here behind :
 * ``lzf``    :mod:`.lzf_stream`     compress-lzf "ZV" chunks
 
 Hadoop ``.crc`` sidecars live in :mod:`.hadoop_crc`. Adding a codec: one module, one line in
-``_CODECS``.
+``_CODECS`` and its leading bytes in ``_SIGNATURES``.
+
+Every stream starts with bytes that tell the codec apart (:func:`codec_of_stream`), so a file is
+read with the codec that wrote it, not only the one the conf names today: a checkpoint whose
+older versions were written with another codec still reads.
 """
 
 from __future__ import annotations
@@ -53,6 +57,21 @@ _CODECS: MappingProxyType[str, tuple[Codec, str]] = MappingProxyType(
 
 CODEC_NAMES: tuple[str, ...] = tuple(_CODECS)
 
+# The first bytes of each stream:
+#   lz4    "LZ4Block"            lz4-java LZ4BlockOutputStream block magic (see lz4_stream)
+#   zstd   28 b5 2f fd           zstd frame magic 0xFD2FB528 little-endian (RFC 8878, 3.1.1)
+#   zstd   5? 2a 4d 18           skippable frame magic 0x184D2A5? (RFC 8878, 3.1.2)
+#   snappy 82 "SNAPPY" 00        snappy-java SnappyOutputStream header (see snappy_stream)
+#   lzf    "ZV" 00 | "ZV" 01     compress-lzf chunk signature + chunk type (see lzf_stream)
+# No prefix is a prefix of another, so the match is unambiguous.
+_SIGNATURES: tuple[tuple[bytes, str], ...] = (
+    (b"LZ4Block", "lz4"),
+    (b"\x28\xb5\x2f\xfd", "zstd"),
+    (b"\x82SNAPPY\x00", "snappy"),
+    (b"ZV\x00", "lzf"),
+    (b"ZV\x01", "lzf"),
+)
+
 _ALIASES: MappingProxyType[str, str] = MappingProxyType(
     {alias.lower(): short for short, (_, cls) in _CODECS.items() for alias in (short, cls, cls.rsplit(".", 1)[1])}
 )
@@ -70,4 +89,19 @@ def codec_for(name: str, where: str = "") -> Codec:
     return _CODECS[short][0]
 
 
-__all__ = ["CODEC_NAMES", "Codec", "codec_for"]
+def codec_of_stream(data: bytes | memoryview, conf_name: str, where: str = "") -> Codec:
+    """The codec that wrote ``data``, told from its first bytes; ``conf_name`` (the codec the conf
+    names) when the bytes match no known stream, so that codec's reader reports what is wrong.
+
+    An empty file is handed to the conf's codec too (every codec writes at least an end marker,
+    so each reader refuses it with its own message)."""
+    head = bytes(data[:8])
+    for signature, name in _SIGNATURES:
+        if head.startswith(signature):
+            return _CODECS[name][0]
+    if len(head) >= 4 and head[0] & 0xF0 == 0x50 and head[1:4] == b"\x2a\x4d\x18":
+        return _CODECS["zstd"][0]
+    return codec_for(conf_name, where)
+
+
+__all__ = ["CODEC_NAMES", "Codec", "codec_for", "codec_of_stream"]

@@ -25,7 +25,7 @@ from collections.abc import Iterable, Iterator
 import numpy as np
 import pyarrow as pa
 
-from ..codecs import codec_for
+from ..codecs import codec_for, codec_of_stream
 from ..codecs.hadoop_crc import crc_name, make_crc, verify_crc
 from ..errors import CorruptInput, Unsupported
 from ..storage import Entry
@@ -273,7 +273,7 @@ class HDFSProvider(Provider):
         crc = crc_name(name)
         if crc in listing:
             verify_crc(raw, store.location.read_bytes(f"{store.rel}/{crc}"), where)
-        return codec_for(codec, where).decompress(raw, where)
+        return codec_of_stream(raw, codec, where).decompress(raw, where)  # older versions may use another codec
 
     def read(self, store: StoreDir, version: int, ctx: ReadContext) -> Iterator[pa.RecordBatch]:
         if version == 0:

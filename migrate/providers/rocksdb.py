@@ -35,7 +35,7 @@ from collections.abc import Iterable, Iterator
 import numpy as np
 import pyarrow as pa
 
-from ..codecs import codec_for
+from ..codecs import codec_for, codec_of_stream
 from ..codecs.hadoop_crc import (
     DEFAULT_BYTES_PER_CHECKSUM,
     HEADER,
@@ -263,7 +263,7 @@ class RocksDBProvider(Provider):
         raw = store.location.read_bytes(f"{_prefix(store)}{name}")
         if crc_name(name) in listing:
             verify_crc(raw, store.location.read_bytes(f"{_prefix(store)}{crc_name(name)}"), where)
-        return codec_for(ctx.codec, where).decompress(raw, where)
+        return codec_of_stream(raw, ctx.codec, where).decompress(raw, where)  # older versions may use another codec
 
     # ---------------------------------------------------------------- reading
     def read(self, store: StoreDir, version: int, ctx: ReadContext) -> Iterator[pa.RecordBatch]:
