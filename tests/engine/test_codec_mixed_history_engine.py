@@ -20,7 +20,7 @@ import shutil
 from pathlib import Path
 
 import pytest
-from test_codec_engine_reads import CODEC_CONF, expected_output, write_input
+from test_codec_engine_reads import expected_output, run_aggregation, write_input
 from test_convert_roundtrip_engine import describe, run_cli
 
 from migrate.codecs import codec_for, codec_of_stream
@@ -36,30 +36,9 @@ CASES = {
 
 
 def run(spark, inp: Path, cp: Path, name: str, provider: str, codec: str, extra: dict[str, str]) -> dict:
-    """Run the aggregation on ``cp`` over the new files in ``inp`` (available-now), return its output."""
-    from pyspark.sql import functions as F
-
-    spark.conf.set("spark.sql.shuffle.partitions", "2")
-    spark.conf.set("spark.sql.streaming.stateStore.providerClass", provider)
-    spark.conf.set(CODEC_CONF, codec)  # pinned at the first start; ignored on restart
-    spark.conf.set(CHANGELOG_CONF, extra.get(CHANGELOG_CONF, "false"))
-    stream = spark.readStream.schema("locker string, grams int").option("maxFilesPerTrigger", 1).json(str(inp))
-    totals = stream.groupBy("locker").agg(F.count("*").alias("drops"), F.sum("grams").alias("grams"))
-    rows: list = []
-    query = (
-        totals.writeStream.outputMode("update")
-        .queryName(name)
-        .foreachBatch(lambda frame, _batch_id: rows.extend(frame.collect()))
-        .option("checkpointLocation", str(cp))
-        .trigger(availableNow=True)
-        .start()
-    )
-    try:
-        query.awaitTermination()
-    finally:
-        query.stop()
-        spark.conf.set(CHANGELOG_CONF, "false")
-    return {r["locker"]: (r["drops"], r["grams"]) for r in rows}
+    """The aggregation on ``cp`` over the new files in ``inp``; changelogs only where ``extra`` says."""
+    conf = {CHANGELOG_CONF: "false", "spark.sql.shuffle.partitions": "2", **extra}
+    return run_aggregation(spark, inp, cp, name, provider, codec, conf, one_batch=False)
 
 
 def totals_after(batch: int) -> dict:
