@@ -279,10 +279,10 @@ def targets(results: list[CaseResult]) -> list[str]:
     return out
 
 
-def write_results(results: list[CaseResult], jobs: int, argv: list[str]) -> Path:
+def write_results(results: list[CaseResult], jobs: int, argv: list[str], name: str | None = None) -> Path:
     RESULTS.mkdir(parents=True, exist_ok=True)
     now = dt.datetime.now()
-    path = RESULTS / f"{now:%Y-%m-%d}.md"
+    path = RESULTS / f"{name or f'{now:%Y-%m-%d}'}.md"
     lines = [
         f"## {now:%Y-%m-%d %H:%M} `python -m benchmarks.run {' '.join(argv)}`",
         "",
@@ -330,6 +330,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--scratch", type=Path, default=None, help="where targets are written (default: a temp dir)")
     ap.add_argument("--tool-path", default=None, metavar="DIR",
                     help="run the migrate package found in DIR instead of this repository's (before/after comparisons)")
+    ap.add_argument("--results", default=None, metavar="NAME",
+                    help="append to benchmarks/results/NAME.md and NAME.jsonl (default: today's date)")
     args = ap.parse_args(argv)
     tool_path = str(Path(args.tool_path).resolve()) if args.tool_path else None
     cases = [c.strip() for c in args.cases.split(",") if c.strip()]
@@ -355,7 +357,7 @@ def main(argv: list[str] | None = None) -> int:
     finally:
         if args.scratch is None:
             shutil.rmtree(scratch, ignore_errors=True)
-    path = write_results(results, args.jobs, argv)
+    path = write_results(results, args.jobs, argv, args.results)
     print(table(results))
     print("\n".join(targets(results)))
     print(f"results appended to {path}")

@@ -34,7 +34,7 @@ from .manifest import (
     manifest_text,
 )
 
-PARQUET_COMPRESSION = "zstd"
+PARQUET_COMPRESSION = "snappy"  # faster to write than zstd (measured: benchmarks/results/2026-12-02-2.md), read by every Parquet reader
 
 
 def data_file_rel(operator_id: int, store: str, partition: int) -> str:
