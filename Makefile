@@ -2,8 +2,11 @@
 PYTHON ?= python3
 VENV   ?= .venv
 BIN    := $(VENV)/bin
+# Second venv: the real-engine tests again under pyspark 3.5.x (tests/requirements-engine35.txt).
+VENV35 ?= .venv35
+BIN35  := $(VENV35)/bin
 
-.PHONY: demo test install install-test engine-test clean
+.PHONY: demo test install install-test install-engine35 engine-test engine-test-35 clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -18,11 +21,25 @@ install-test: $(BIN)/python
 demo: install
 	PATH="$(abspath $(BIN)):$$PATH" bash demo_checkpoints/run_demo.sh
 
-test: install-test
+$(BIN35)/python:
+	$(PYTHON) -m venv $(VENV35)
+	$(BIN35)/python -m pip install --quiet --upgrade pip
+
+# The project without its dependencies (its test extra pins pyspark 4.x); they are in the list.
+install-engine35: $(BIN35)/python
+	$(BIN35)/pip install --quiet -r tests/requirements-engine35.txt
+	$(BIN35)/pip install --quiet --no-deps -e .
+
+# The whole suite under pyspark 4.x, then the engine tests under pyspark 3.5.x.
+test: install-test install-engine35
 	$(BIN)/python -m pytest -q
+	$(BIN35)/python -m pytest -q -m engine
 
 engine-test: install-test
 	$(BIN)/python -m pytest -q -m engine
 
+engine-test-35: install-engine35
+	$(BIN35)/python -m pytest -q -m engine
+
 clean:
-	rm -rf $(VENV) .pytest_cache build *.egg-info
+	rm -rf $(VENV) $(VENV35) .pytest_cache build *.egg-info

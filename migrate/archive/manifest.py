@@ -152,6 +152,11 @@ class Manifest:
     data_files: tuple[DataFile, ...]
     notes: tuple[str, ...] = ()
     format_version: int = FORMAT_VERSION
+    #: the engine that wrote the source last (``checkpoint.engine.EngineInference.to_json()``);
+    #: None in archives written before stateshift recorded it (import infers it from the logs)
+    engine: dict[str, Any] | None = None
+    #: state checkpoint format of the source (2: unique ids, see checkpoint/uids.py); import keeps it for RocksDB
+    checkpoint_format: int = 1
 
     @property
     def rows(self) -> int:
@@ -178,10 +183,12 @@ class Manifest:
             "state_version": self.state_version,
             "provider_class": self.provider_class,
             "codec": self.codec,
+            **({"engine": self.engine} if self.engine is not None else {}),
             "partitions": self.partitions,
             "rows": self.rows,
             "uncommitted_batches": list(self.uncommitted),
             "notes": list(self.notes),
+            "checkpoint_format": self.checkpoint_format,
             "how_to_query": {
                 "layout": f"{DATA_DIR}/operator=<id>/store=<name>/partition=<n>/part-0.parquet",
                 "raw_columns": "key and value: the engine's row bytes exactly as read (restore uses only these)",
@@ -363,4 +370,6 @@ def parse_manifest(text: str, where: str) -> Manifest:
         checkpoint_files=tuple(_archived_file(o, i, where) for i, o in enumerate(f.get("checkpoint_files", (list,)))),
         data_files=tuple(_data_file(o, i, where) for i, o in enumerate(f.get("data_files", (list,)))),
         notes=tuple(str(n) for n in f.get("notes", (list,))),
+        engine=f.get("engine", (dict,), optional=True),
+        checkpoint_format=int(f.get("checkpoint_format", (int,), optional=True) or 1),  # absent in older archives
     )

@@ -182,8 +182,31 @@ def _load_operator(loc: Location, op_id: int) -> Operator:
                 parts.append(StorePartition(StoreDir(loc, srel, op_id, p, sname), slisting))
     if not stores:
         seen = sorted({sp.store_name for sp in parts})
-        stores = [StoreInfo(s) for s in seen]
+        prefix = _session_prefix(loc, f"{rel}/0") if seen == ["default"] and 0 in partitions else 0
+        stores = [StoreInfo(s, prefix) for s in seen]
     return Operator(op_id, name, tuple(stores), tuple(parts), meta)
+
+
+def _session_prefix(loc: Location, part0: str) -> int:
+    """``numColsPrefixKey`` of an operator without operator metadata (written by engine 3.5), from
+    its schema file: a session-window store (key ends with ``sessionStartTime: timestamp``, a value
+    field carries the metadata ``spark.sessionWindow: true``; observed on 3.5.9 and 4.3.0) keys
+    RocksDB by every key field but the session start (4.3.0's metadata says 1 for one grouping
+    column). Anything else has no prefix key (0)."""
+    from ..rows.schema import TimestampType, parse_state_schema_file
+
+    if "_metadata" not in loc.list_dir(part0) or "schema" not in loc.list_dir(f"{part0}/_metadata"):
+        return 0
+    rel = f"{part0}/_metadata/schema"
+    schemas = parse_state_schema_file(loc.read_bytes(rel), loc.describe(rel))
+    if len(schemas) != 1:
+        return 0
+    key, value = schemas[0].key_schema, schemas[0].value_schema
+    last = key.fields[-1] if key.fields else None
+    session_value = any(f.metadata_dict.get("spark.sessionWindow") is True for f in value.fields)
+    if last is not None and last.name == "sessionStartTime" and isinstance(last.data_type, TimestampType) and session_value:
+        return len(key.fields) - 1
+    return 0
 
 
 def _refuse_unexplained_versions(operators: list[Operator], provider: Provider, newest_batch: int) -> None:

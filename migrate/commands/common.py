@@ -12,10 +12,21 @@ import os
 from collections.abc import Callable, Iterable
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
-from multiprocessing import get_context
+from multiprocessing import get_all_start_methods, get_context
 from typing import Any
 
+from ..checkpoint.engine import (
+    SPARK_35,
+    EngineInference,
+    infer_engine,
+    nullable_value_schema,
+    parse_engine_version,
+    refuse_for_35,
+    refuse_target,
+    upgrade_schema_rewrites,
+)
 from ..checkpoint.model import Checkpoint, StorePartition
+from ..checkpoint.uids import derived_uid, partition_uid
 from ..digest import Digest, DigestingIterator, digest_batches
 from ..errors import StateshiftError, UnsafeTarget, UsageError
 from ..providers import provider_for
@@ -79,6 +90,9 @@ class PartitionTask:
     num_cols_prefix_key: int = 0
     write_crc: bool = True
     listing: dict[str, Any] | None = field(default=None, compare=False)
+    source_uid: str | None = None  # id of the source version (state checkpoint format 2)
+    target_uid: str | None = None  # id to give the written version (format 2 target)
+    engine: str = "4.x"  # engine family the target is written for (checkpoint.engine)
 
 
 @dataclass(frozen=True)
@@ -115,16 +129,18 @@ def run_partition(task: PartitionTask) -> PartitionResult:
     """Move one store partition and prove it by reading the target back."""
     src = provider_for(task.source_provider)
     dst = provider_for(task.target_provider)
-    rctx = ReadContext(conf=task.read_conf, num_cols_prefix_key=task.num_cols_prefix_key, listing=task.listing)
+    rctx = ReadContext(conf=task.read_conf, num_cols_prefix_key=task.num_cols_prefix_key, listing=task.listing, checkpoint_id=task.source_uid)
     source_bytes = sum(f.size for f in src.source_files(task.source, task.version, rctx))
     props = src.store_properties(task.source, task.version, rctx)  # what the rows cannot carry
     dst.check_writable(props, task.source.describe())
     stream = DigestingIterator(src.read(task.source, task.version, rctx))
-    wctx = WriteContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, write_crc=task.write_crc, extra=props)
-    written = dst.write(task.target, task.version, stream, wctx)
-    back = digest_batches(
-        dst.read(task.target, task.version, ReadContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, extra=props))
+    wctx = WriteContext(
+        conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, write_crc=task.write_crc, extra=props,
+        checkpoint_id=task.target_uid, engine=task.engine,
     )
+    written = dst.write(task.target, task.version, stream, wctx)
+    rctx_back = ReadContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, extra=props, checkpoint_id=task.target_uid)
+    back = digest_batches(dst.read(task.target, task.version, rctx_back))
     return PartitionResult(
         task.source.operator_id,
         task.source.store_name,
@@ -138,13 +154,15 @@ def run_partition(task: PartitionTask) -> PartitionResult:
     )
 
 
-def read_back_digest(provider: str, target: StoreDir, version: int, conf: dict[str, str], prefix: int) -> Digest | None:
+def read_back_digest(
+    provider: str, target: StoreDir, version: int, conf: dict[str, str], prefix: int, uid: str | None = None
+) -> Digest | None:
     """Digest of what an earlier run left in a target store directory, or None if unreadable."""
     try:
         listing = target.location.list_dir(target.rel)
         if not listing:
             return None
-        ctx = ReadContext(conf=conf, num_cols_prefix_key=prefix, listing=listing)
+        ctx = ReadContext(conf=conf, num_cols_prefix_key=prefix, listing=listing, checkpoint_id=uid)
         return digest_batches(provider_for(provider).read(target, version, ctx))
     except StateshiftError:
         return None
@@ -152,7 +170,9 @@ def read_back_digest(provider: str, target: StoreDir, version: int, conf: dict[s
 
 def reverify_partition(task: PartitionTask, expected: Digest) -> PartitionResult | None:
     """Read back a partition an earlier run wrote; a result if it still matches, else None."""
-    back = read_back_digest(task.target_provider, task.target, task.version, task.write_conf, task.num_cols_prefix_key)
+    back = read_back_digest(
+        task.target_provider, task.target, task.version, task.write_conf, task.num_cols_prefix_key, task.target_uid
+    )
     if back != expected:
         return None
     return PartitionResult(
@@ -167,8 +187,22 @@ def add_target_arguments(parser: argparse.ArgumentParser, what: str) -> None:
     parser.add_argument("--to", required=True, metavar="PROVIDER", help=f"target provider: {' | '.join(PROVIDER_NAMES)} | <provider class>")
     parser.add_argument("--overwrite", action="store_true", help="replace a non-empty DST")
     parser.add_argument("--resume", action="store_true", help=f"finish an interrupted {what} into DST, reusing verified partitions")
+    parser.add_argument(
+        "--engine-version", metavar="VERSION", default=None,
+        help="engine the target is written for: 3.5 (Spark 3.5.x) or 4.x (Spark 4.x; 4, 4.3, 4.3.0 also work); "
+        "default: the engine that wrote the source last",
+    )
     add_jobs_argument(parser)
     parser.add_argument("--target-storage-option", action="append", default=[], metavar="KEY=VALUE", help="filesystem option for DST only")
+
+
+def add_checkpoint_format_argument(parser: argparse.ArgumentParser) -> None:
+    """``--checkpoint-format {1,2}``: the state checkpoint format to write (checkpoint/uids.py)."""
+    parser.add_argument(
+        "--checkpoint-format", type=int, choices=(1, 2), default=None, metavar="{1,2}",
+        help="state checkpoint format to write: 2 = unique ids in RocksDB file names and commits (rocksdb only); "
+        "default: the source's format for rocksdb, 1 for hdfs",
+    )
 
 
 def add_jobs_argument(parser: argparse.ArgumentParser) -> None:
@@ -193,14 +227,17 @@ def refuse_unwritable(ckpt: Checkpoint, target_provider: str) -> None:
                 continue
             seen.add((sp.operator_id, sp.store_name))
             prefix = op.store_info(sp.store_name).num_cols_prefix_key
-            ctx = ReadContext(conf=ckpt.conf, num_cols_prefix_key=prefix, listing=sp.listing)
+            ctx = ReadContext(conf=ckpt.conf, num_cols_prefix_key=prefix, listing=sp.listing, checkpoint_id=partition_uid(ckpt, sp))
             dst.check_writable(src.store_properties(sp.dir, ckpt.state_version, ctx), sp.dir.describe())
 
 
-def digest_partition(sp: StorePartition, provider: str, version: int, conf: dict[str, str], prefix: int) -> tuple[Digest, int]:
-    """Digest of one store partition of a checkpoint, plus its source bytes."""
+def digest_partition(
+    sp: StorePartition, provider: str, version: int, conf: dict[str, str], prefix: int, uid: str | None = None
+) -> tuple[Digest, int]:
+    """Digest of one store partition of a checkpoint, plus its source bytes (``uid``: the id of the
+    version, state checkpoint format 2)."""
     p = provider_for(provider)
-    ctx = ReadContext(conf=conf, num_cols_prefix_key=prefix, listing=sp.listing)
+    ctx = ReadContext(conf=conf, num_cols_prefix_key=prefix, listing=sp.listing, checkpoint_id=uid)
     size = sum(f.size for f in p.source_files(sp.dir, version, ctx))
     return digest_batches(p.read(sp.dir, version, ctx)), size
 
@@ -224,6 +261,25 @@ def _known_bytes(tasks: list[Any]) -> int:
     return total
 
 
+# Imported once by the fork server, so each worker starts as a fork of a process that has them
+# (spawned workers each paid ~1 CPU second importing pyarrow, numpy and rocksdict).
+_WORKER_PRELOAD = [
+    "migrate.commands.convert", "migrate.commands.export", "migrate.commands.import_archive",
+    "pyarrow.compute", "pyarrow.acero", "pyarrow.parquet", "rocksdict",
+]
+
+
+def _worker_context() -> Any:
+    """The process start method for workers: a fork server (a clean single-threaded process that
+    has the heavy modules imported; never the caller itself, which may hold threads or an open
+    RocksDB), else spawn where fork servers do not exist."""
+    if "forkserver" not in get_all_start_methods():
+        return get_context("spawn")
+    ctx = get_context("forkserver")
+    ctx.set_forkserver_preload(_WORKER_PRELOAD)
+    return ctx
+
+
 def run_tasks(
     tasks: list[PartitionTask],
     fn: Callable[[PartitionTask], PartitionResult],
@@ -232,7 +288,8 @@ def run_tasks(
 ) -> list[PartitionResult]:
     """Run tasks in order (``jobs`` <= 1) or in worker processes; memory is bounded by jobs in flight.
 
-    Starting worker processes costs about a second each, so small jobs (fewer than
+    Workers are forked from a fork server that has the heavy modules imported (see
+    ``_worker_context``). Starting the pool still costs about a second, so small jobs (fewer than
     ``PARALLEL_MIN_TASKS`` partitions with less than ``PARALLEL_MIN_BYTES`` of source state by the
     listings the tasks carry) run in this process.
     """
@@ -244,28 +301,46 @@ def run_tasks(
             on_done(r)
             results.append(r)
         return results
-    ctx = get_context("spawn")
-    with ProcessPoolExecutor(max_workers=jobs, mp_context=ctx) as pool:
-        pending = [pool.submit(fn, t) for t in tasks]
-        for fut in pending:
-            try:
-                r = fut.result()
-            except StateshiftError:
-                for other in pending:
-                    other.cancel()
-                raise
-            on_done(r)
-            results.append(r)
+    try:
+        with ProcessPoolExecutor(max_workers=jobs, mp_context=_worker_context()) as pool:
+            pending = [pool.submit(fn, t) for t in tasks]
+            for fut in pending:
+                try:
+                    r = fut.result()
+                except StateshiftError:
+                    for other in pending:
+                        other.cancel()
+                    raise
+                on_done(r)
+                results.append(r)
+    finally:
+        _stop_fork_server()
     return results
 
 
+def _stop_fork_server() -> None:
+    """Stop the fork server and wait for it, so its workers' CPU time and memory are accounted to
+    this process like spawned children's (``wait4``/``RUSAGE_CHILDREN``, which the benchmarks
+    read); the next ``run_tasks`` starts a new one."""
+    from multiprocessing import forkserver
+
+    stop = getattr(getattr(forkserver, "_forkserver", None), "_stop", None)  # CPython >= 3.9
+    if stop is not None:
+        stop()
+
+
 def tasks_for(
-    ckpt: Checkpoint, dst: Location, target_provider: str, write_conf: dict[str, str], partitions: Iterable[StorePartition]
+    ckpt: Checkpoint, dst: Location, target_provider: str, write_conf: dict[str, str], partitions: Iterable[StorePartition],
+    target_format: int = 1,
+    engine: str = "4.x",
 ) -> list[PartitionTask]:
+    """One task per store partition; ``target_format`` 2 gives each written version a unique id."""
     tasks = []
     for sp in partitions:
         op = next(o for o in ckpt.operators if o.operator_id == sp.operator_id)
         prefix = op.store_info(sp.store_name).num_cols_prefix_key
+        source_uid = partition_uid(ckpt, sp)
+        seed = f"convert:{ckpt.query_id}:{ckpt.latest_batch}:{source_uid or ''}:{target_provider}"
         tasks.append(
             PartitionTask(
                 source=sp.dir,
@@ -278,6 +353,37 @@ def tasks_for(
                 num_cols_prefix_key=prefix,
                 write_crc=dst.is_local,
                 listing=sp.listing,
+                source_uid=source_uid,
+                target_uid=derived_uid(seed, sp.operator_id, sp.partition, sp.store_name) if target_format == 2 else None,
+                engine=engine,
             )
         )
     return tasks
+
+
+def engine_plan(ckpt: Checkpoint, requested: str | None, schema_rels: Iterable[str] = ()) -> tuple[EngineInference, str, list[str]]:
+    """(the engine that wrote ``ckpt`` last, the family to write for, the schema files among
+    ``schema_rels`` to rewrite for it); refuses, before anything is written, a target engine older
+    than the source's and logs or confs 3.5 cannot read (see ``checkpoint.engine``); the schema
+    files to rewrite are parsed here, so a bad one stops the run before anything is written."""
+    source = infer_engine(ckpt)
+    target = parse_engine_version(requested) if requested else source.family
+    refuse_target(source, target, ckpt.location.describe)
+    if target == SPARK_35:
+        refuse_for_35(ckpt.offsets, ckpt.commits, ckpt.conf, ckpt.location.describe)
+    rewrites = upgrade_schema_rewrites(source.family, target, schema_rels)
+    for rel in rewrites:
+        nullable_value_schema(ckpt.location.read_bytes(rel), ckpt.location.describe(rel))
+    return source, target, rewrites
+
+
+def refuse_format_for_engine(fmt: int, engine: str, where: str) -> None:
+    """Engine 3.5 has only the state checkpoint format 1 (it refuses commits ``v2``, observed)."""
+    if engine == SPARK_35 and fmt >= 2:
+        from ..errors import Unsupported
+
+        raise Unsupported(
+            f"state checkpoint format {fmt} (unique ids, commits v2) cannot be written for engine 3.5, which reads only "
+            "format 1; write format 1 or target engine 4.x",
+            where,
+        )

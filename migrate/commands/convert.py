@@ -20,6 +20,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from .. import faults
+from ..checkpoint.engine import nullable_value_schema
 from ..checkpoint.files import (
     conf_changes,
     is_operator_metadata_v2,
@@ -29,7 +30,15 @@ from ..checkpoint.files import (
 )
 from ..checkpoint.liveness import changed_since, running_signs
 from ..checkpoint.model import Checkpoint, load_checkpoint
-from ..checkpoint.schemas import check_schemas
+from ..checkpoint.schemas import check_schemas, schema_files
+from ..checkpoint.uids import (
+    check_chain_against_commits,
+    checkpoint_format,
+    commits_for_target,
+    partition_uid,
+    target_format,
+    uids_table,
+)
 from ..codecs.hadoop_crc import crc_name, make_crc
 from ..errors import QueryMayBeRunning, VerificationFailed
 from ..providers import class_name_for, provider_for
@@ -38,10 +47,13 @@ from . import journal
 from .common import (
     PartitionResult,
     PartitionTask,
+    add_checkpoint_format_argument,
     add_target_arguments,
     checked_jobs,
     digest_partition,
+    engine_plan,
     guard_target,
+    refuse_format_for_engine,
     refuse_unwritable,
     reverify_partition,
     run_partition,
@@ -64,6 +76,11 @@ class ConvertReport:
     dry_run: bool
     partitions: list[dict[str, Any]] = field(default_factory=list)
     files: list[dict[str, Any]] = field(default_factory=list)
+    source_format: int = 1  # state checkpoint format (checkpoint/uids.py)
+    target_format: int = 1
+    source_engine: dict[str, Any] = field(default_factory=dict)  # checkpoint.engine.EngineInference.to_json()
+    target_engine: str = "4.x"
+    schema_rewrites: list[str] = field(default_factory=list)  # made nullable for the target engine
 
     @property
     def rows(self) -> int:
@@ -72,6 +89,10 @@ class ConvertReport:
     def to_json(self) -> dict[str, Any]:
         return {
             "command": "convert",
+            "checkpoint_format": {"source": self.source_format, "target": self.target_format},
+            "source_engine": self.source_engine,
+            "target_engine": self.target_engine,
+            "schema_rewrites": self.schema_rewrites,
             "dry_run": self.dry_run,
             "source": self.source,
             "target": self.target,
@@ -116,9 +137,13 @@ def _copy(src: Location, dst: Location, rel: str) -> dict[str, Any]:
     return {"path": rel, "bytes": len(data), "action": "copy"}
 
 
-def plan_files(ckpt: Checkpoint, target_provider: str) -> list[dict[str, Any]]:
+def plan_files(
+    ckpt: Checkpoint, target_provider: str, fmt: int = 1, schema_rewrites: list[str] | tuple[str, ...] = ()
+) -> list[dict[str, Any]]:
     early, late = verbatim_files(ckpt)
-    files = [{"path": f.rel, "bytes": f.size, "action": "copy"} for f in early + late]
+    changed = commits_for_target(ckpt.commits, ckpt.latest_batch, fmt, {})  # which entries change (ids not chosen yet)
+    changed = {**changed, **{rel: b"" for rel in schema_rewrites}}
+    files = [{"path": f.rel, "bytes": f.size, "action": "rewrite" if f.rel in changed else "copy"} for f in early + late]
     for rel, data, _ in rewritten_offsets(ckpt, class_name_for(target_provider)):
         files.append({"path": rel, "bytes": len(data), "action": "rewrite"})
     return files
@@ -136,6 +161,8 @@ def convert(
     jobs: int = 1,
     progress: Callable[[PartitionResult], None] = lambda r: None,
     on_plan: Callable[[int], None] = lambda n: None,
+    checkpoint_format_to: int | None = None,
+    engine_version: str | None = None,
 ) -> ConvertReport:
     guard_target(src, dst)
     ckpt = load_checkpoint(src)
@@ -146,6 +173,10 @@ def convert(
     ckpt.provider  # an unknown source provider class raises Unsupported here
     check_schemas(ckpt, verbatim_files(ckpt)[0])
     refuse_unwritable(ckpt, target_class)
+    check_chain_against_commits(ckpt)  # format 2: the lineage agrees with the commit log
+    fmt = target_format(checkpoint_format(ckpt), target.name, checkpoint_format_to, dst.display)
+    source_engine, engine, schema_rewrites = engine_plan(ckpt, engine_version, schema_files(verbatim_files(ckpt)[0]))
+    refuse_format_for_engine(fmt, engine, dst.display)
     report = ConvertReport(
         source=src.display,
         target=dst.display,
@@ -157,12 +188,17 @@ def convert(
         uncommitted=ckpt.uncommitted,
         conf_changes=conf_changes(ckpt, target_class),
         dry_run=dry_run,
+        source_format=checkpoint_format(ckpt),
+        target_format=fmt,
+        source_engine=source_engine.to_json(),
+        target_engine=engine,
+        schema_rewrites=schema_rewrites,
     )
     partitions = ckpt.store_partitions()
     on_plan(len(partitions))
     if dry_run:
         report.partitions = dry_run_partitions(ckpt, target.name, progress)
-        report.files = plan_files(ckpt, target_class)
+        report.files = plan_files(ckpt, target_class, fmt, schema_rewrites)
         return report
 
     identity = {
@@ -172,16 +208,29 @@ def convert(
         "batch": ckpt.latest_batch,
         "source_provider": ckpt.provider_class,
         "target_provider": target_class,
+        "checkpoint_format": fmt,
+        "target_engine": engine,
     }
-    tasks = tasks_for(ckpt, dst, target.name, dict(ckpt.conf), partitions)
+    tasks = tasks_for(ckpt, dst, target.name, dict(ckpt.conf), partitions, target_format=fmt, engine=engine)
     results = run_journaled(dst, identity, tasks, resume=resume, overwrite=overwrite, jobs=jobs, progress=progress)
     report.partitions = [r.to_json() for r in results]
     if not force:
         refuse_if_running(ckpt, after_read=True)
     faults.reached("before-logs")
-    publish(ckpt, dst, target_class, report)
+    publish(ckpt, dst, target_class, report, commits=commits_for_target(ckpt.commits, ckpt.latest_batch, fmt, written_uids(ckpt, tasks)),
+            schema_rewrites=schema_rewrites)
     journal.finish(dst)
     return report
+
+
+def written_uids(ckpt: Checkpoint, tasks: list[PartitionTask]) -> dict[int, list[list[str]]]:
+    """``stateUniqueIds`` of the versions the tasks wrote (stores in operator-metadata order)."""
+    order = {op.operator_id: [s.name for s in op.stores] for op in ckpt.operators}
+    return uids_table(
+        (t.target.operator_id, t.target.partition, order[t.target.operator_id].index(t.target.store_name), t.target_uid)
+        for t in tasks
+        if t.target_uid
+    )
 
 
 def dry_run_partitions(ckpt: Checkpoint, target_name: str, progress: Callable[[PartitionResult], None]) -> list[dict[str, Any]]:
@@ -189,7 +238,8 @@ def dry_run_partitions(ckpt: Checkpoint, target_name: str, progress: Callable[[P
     for op in ckpt.operators:
         for sp in op.partitions:
             digest, size = digest_partition(
-                sp, ckpt.provider_class, ckpt.state_version, ckpt.conf, op.store_info(sp.store_name).num_cols_prefix_key
+                sp, ckpt.provider_class, ckpt.state_version, ckpt.conf, op.store_info(sp.store_name).num_cols_prefix_key,
+                partition_uid(ckpt, sp),
             )
             r = PartitionResult(sp.operator_id, sp.store_name, sp.partition, digest, None, size, 0, 0)
             progress(r)
@@ -257,22 +307,34 @@ def target_names(provider: str, version: int) -> list[str]:
 
 
 def publish(
-    ckpt: Checkpoint, dst: Location, target_class: str, report: ConvertReport, query_metadata: bytes | None = None
+    ckpt: Checkpoint, dst: Location, target_class: str, report: ConvertReport, query_metadata: bytes | None = None,
+    commits: dict[str, bytes] | None = None, schema_rewrites: list[str] | tuple[str, ...] = (),
 ) -> None:
-    """Copy the verbatim files and write the logs; the real ``metadata`` goes last."""
+    """Copy the verbatim files and write the logs; the real ``metadata`` goes last. ``commits``:
+    commits entries rewritten for the target's state checkpoint format (checkpoint/uids.py);
+    ``schema_rewrites``: schema files whose value schema is made nullable for the target engine
+    (``checkpoint.engine.upgrade_schema_rewrites``)."""
     src = ckpt.location
+    commits = commits or {}
     early, late = verbatim_files(ckpt)
     moved = {f.rel for f in early if is_operator_metadata_v2(f.rel)}  # schema paths point at dst
+    relaxed = set(schema_rewrites)
     for f in early:
         if f.rel in moved:
             data = point_schema_paths_at(src.read_bytes(f.rel), dst, src.describe(f.rel))
             report.files += _write_with_crc(dst, f.rel, data, crc_rel(f.rel) in {g.rel for g in early})
-        elif f.rel not in {crc_rel(m) for m in moved}:
+        elif f.rel in relaxed:
+            data = nullable_value_schema(src.read_bytes(f.rel), src.describe(f.rel))
+            report.files += _write_with_crc(dst, f.rel, data, crc_rel(f.rel) in {g.rel for g in early})
+        elif f.rel not in {crc_rel(m) for m in moved | relaxed}:
             report.files.append(_copy(src, dst, f.rel))
+    late_rels = {f.rel for f in late}
     for f in late:
-        if f.rel in ("metadata", ".metadata.crc"):
+        if f.rel in ("metadata", ".metadata.crc") or f.rel in commits or f.rel in {crc_rel(c) for c in commits}:
             continue
         report.files.append(_copy(src, dst, f.rel))
+    for rel, data in sorted(commits.items()):
+        report.files += _write_with_crc(dst, rel, data, crc_rel(rel) in late_rels)
     for rel, data, had_crc in rewritten_offsets(ckpt, target_class):
         report.files += _write_with_crc(dst, rel, data, had_crc)
     faults.reached("before-metadata")
@@ -292,6 +354,7 @@ def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
     c.add_argument("--dry-run", action="store_true", help="print the plan as a diff and write nothing")
     c.add_argument("--force", action="store_true", help="skip the running-query guard (only if you know the query is stopped)")
     add_target_arguments(c, "conversion")
+    add_checkpoint_format_argument(c)
     c.set_defaults(run=run)
 
 
@@ -305,6 +368,8 @@ def run(args: argparse.Namespace, ctx: Any) -> int:
         src, dst, args.to, dry_run=args.dry_run, overwrite=args.overwrite, resume=args.resume, force=args.force,
         jobs=args.jobs,
         progress=ctx.progress.step, on_plan=ctx.progress.start,
+        checkpoint_format_to=getattr(args, "checkpoint_format", None),
+        engine_version=args.engine_version,
     )
     ctx.progress.close()
     ctx.emit(report.to_json(), render_convert(report))

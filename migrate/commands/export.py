@@ -44,9 +44,15 @@ from ..archive.writer import (
     write_data_file,
     write_manifest,
 )
+from ..checkpoint.engine import infer_engine
 from ..checkpoint.files import CopyFile, verbatim_files
 from ..checkpoint.logs import CODEC_CONF, PROVIDER_CONF
 from ..checkpoint.model import HDFS_CLASS, Checkpoint, load_checkpoint
+from ..checkpoint.uids import (
+    check_chain_against_commits,
+    checkpoint_format,
+    partition_uid,
+)
 from ..digest import Digest
 from ..errors import UnsafeTarget, UsageError
 from ..providers import provider_for
@@ -73,6 +79,7 @@ class ExportTask:
     schema_where: str
     metadata: dict[str, str]
     listing: dict[str, Any] | None = field(default=None, compare=False)
+    checkpoint_id: str | None = None  # id of the version (state checkpoint format 2)
 
 
 @dataclass(frozen=True)
@@ -91,7 +98,7 @@ class ExportResult:
 def run_export_task(task: ExportTask) -> ExportResult:
     """Read one store partition and stream it into its Parquet file."""
     p = provider_for(task.provider)
-    ctx = ReadContext(conf=task.conf, num_cols_prefix_key=task.num_cols_prefix_key, listing=task.listing)
+    ctx = ReadContext(conf=task.conf, num_cols_prefix_key=task.num_cols_prefix_key, listing=task.listing, checkpoint_id=task.checkpoint_id)
     source_bytes = sum(f.size for f in p.source_files(task.source, task.version, ctx))
     decoder = decoder_for(task.schema_bytes, task.schema_where)
     props = p.store_properties(task.source, task.version, ctx)  # kept with the rows, for import
@@ -120,6 +127,8 @@ class ExportReport:
             "state_version": m.state_version,
             "provider": m.provider_class,
             "codec": m.codec,
+            "checkpoint_format": m.checkpoint_format,
+            "engine": m.engine,
             "rows": m.rows,
             "data_files": [d.to_json() for d in m.data_files],
             "checkpoint_files": len(m.checkpoint_files),
@@ -224,8 +233,12 @@ def export(
 
     # every store partition must rebuild this version from the files present (before writing)
     for sp in partitions:
-        ctx = ReadContext(conf=ckpt.conf, num_cols_prefix_key=prefix_of.get((sp.operator_id, sp.store_name), 0), listing=sp.listing)
+        ctx = ReadContext(
+            conf=ckpt.conf, num_cols_prefix_key=prefix_of.get((sp.operator_id, sp.store_name), 0), listing=sp.listing,
+            checkpoint_id=partition_uid(ckpt, sp),
+        )
         provider.source_files(sp.dir, ckpt.state_version, ctx)
+    check_chain_against_commits(ckpt)  # format 2: the lineage agrees with the commit log
 
     files = kept_checkpoint_files(ckpt, latest)
     paths = [f.rel for f in files]
@@ -260,7 +273,7 @@ def export(
             schema_where=src.describe(rel) if rel else src.describe(sp.dir.rel),
             metadata={"stateshift.operator": str(sp.operator_id), "stateshift.store": sp.store_name,
                       "stateshift.partition": str(sp.partition), "stateshift.state_version": str(ckpt.state_version)},
-            listing=sp.listing,
+            listing=sp.listing, checkpoint_id=partition_uid(ckpt, sp),
         ))
     results: list[ExportResult] = run_tasks(tasks, run_export_task, jobs, progress)  # type: ignore[arg-type]
     if not force:
@@ -307,6 +320,8 @@ def export(
         checkpoint_files=tuple(archived),
         data_files=tuple(data_files),
         notes=tuple(notes),
+        engine=infer_engine(ckpt).to_json(),
+        checkpoint_format=checkpoint_format(ckpt),
     )
     write_manifest(archive, manifest)
     report.manifest = manifest
@@ -322,7 +337,8 @@ def render(report: ExportReport) -> str:
         f"exported {report.source}",
         f"      to {report.archive}",
         f"  query {m.query_id}, batch {m.batch_id} (state version {m.state_version})",
-        f"  provider {m.provider_class}, codec {m.codec}",
+        f"  provider {m.provider_class}, codec {m.codec}, state checkpoint format {m.checkpoint_format}",
+        *([f"  engine {m.engine['family']} wrote it last ({m.engine['evidence']}); recorded in the manifest"] if m.engine else []),
         (f"  {len(m.data_files)} store partition(s), {m.rows} rows, {data_bytes} bytes of Parquet; "
          f"{len(m.checkpoint_files)} checkpoint file(s) kept verbatim"),
     ]

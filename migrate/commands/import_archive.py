@@ -30,14 +30,27 @@ from typing import Any
 from .. import faults
 from ..archive.manifest import CHECKPOINT_DIR, MANIFEST_NAME, DataFile, Manifest
 from ..archive.reader import check_archive, load_manifest, read_rows, store_properties
+from ..checkpoint.engine import (
+    SPARK_35,
+    EngineInference,
+    infer_from_logs,
+    nullable_value_schema,
+    parse_engine_version,
+    refuse_for_35,
+    refuse_target,
+    upgrade_schema_rewrites,
+)
 from ..checkpoint.files import is_operator_metadata_v2, point_schema_paths_at
 from ..checkpoint.logs import (
     PROVIDER_CONF,
+    CommitEntry,
     format_offsets,
+    parse_commit,
     parse_offsets,
     parse_query_metadata,
     with_conf,
 )
+from ..checkpoint.uids import commits_for_target, derived_uid, target_format, uids_table
 from ..digest import Digest, DigestingIterator, digest_batches
 from ..errors import CorruptInput, VerificationFailed
 from ..providers import class_name_for, provider_for
@@ -45,6 +58,7 @@ from ..providers.base import ReadContext, StoreDir, WriteContext, WrittenFile
 from ..storage import Location
 from . import journal
 from .common import (
+    add_checkpoint_format_argument,
     add_target_arguments,
     checked_jobs,
     guard_target,
@@ -74,6 +88,8 @@ class ImportTask:
     write_conf: dict[str, str]
     num_cols_prefix_key: int = 0
     write_crc: bool = True
+    engine: str = "4.x"  # engine family the target is written for (checkpoint.engine)
+    target_uid: str | None = None  # id to give the written version (state checkpoint format 2 target)
 
 
 @dataclass(frozen=True)
@@ -110,11 +126,14 @@ def run_import_task(task: ImportTask) -> ImportResult:
     props = store_properties(task.archive, task.data_file)  # what the rows cannot carry
     p.check_writable(props, task.archive.describe(task.data_file.path))
     stream = DigestingIterator(read_rows(task.archive, task.data_file))
-    wctx = WriteContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, write_crc=task.write_crc, extra=props)
+    wctx = WriteContext(
+        conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, write_crc=task.write_crc, extra=props, engine=task.engine,
+        checkpoint_id=task.target_uid,
+    )
     written = p.write(task.target, task.version, stream, wctx)
     for _ in stream:  # a writer that stopped early leaves rows unread: count them, so it shows
         pass
-    rctx = ReadContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, extra=props)
+    rctx = ReadContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, extra=props, checkpoint_id=task.target_uid)
     back = digest_batches(p.read(task.target, task.version, rctx))
     d = task.data_file
     return ImportResult(d.operator, d.store, d.partition, d.digest, stream.digest, back, tuple(written))
@@ -133,8 +152,12 @@ class ImportReport:
     dry_run: bool
     checked_files: int = 0
     checked_bytes: int = 0
+    source_engine: dict[str, Any] = field(default_factory=dict)  # checkpoint.engine.EngineInference.to_json()
+    target_engine: str = "4.x"
+    schema_rewrites: list[str] = field(default_factory=list)  # made nullable for the target engine
     partitions: list[dict[str, Any]] = field(default_factory=list)
     files: list[dict[str, Any]] = field(default_factory=list)
+    checkpoint_format: dict[str, int] = field(default_factory=lambda: {"source": 1, "target": 1})  # checkpoint/uids.py
 
     @property
     def rows(self) -> int:
@@ -155,6 +178,10 @@ class ImportReport:
             "state_version": self.state_version,
             "source_provider": self.source_provider,
             "target_provider": self.target_provider,
+            "source_engine": self.source_engine,
+            "target_engine": self.target_engine,
+            "schema_rewrites": self.schema_rewrites,
+            "checkpoint_format": self.checkpoint_format,
             "conf_changes": changes,
             "archive_check": {"files": self.checked_files, "bytes": self.checked_bytes, "ok": True},
             "rows": self.rows,
@@ -212,6 +239,33 @@ def _check_logs(archive: Location, manifest: Manifest, files: _Files) -> dict[st
     return entry.conf
 
 
+def _engine_plan(
+    archive: Location, manifest: Manifest, files: _Files, conf: dict[str, str], requested: str | None
+) -> tuple[EngineInference, str, list[str]]:
+    """(the engine that wrote the exported checkpoint last, the family to write for, the archived
+    schema files to rewrite for it), refused before anything is written like ``common.engine_plan``. Archives from before the manifest
+    recorded the engine: inferred from the archived logs the same way."""
+    describe = lambda rel: archive.describe(f"{CHECKPOINT_DIR}/{rel}")  # noqa: E731
+    offsets = {b: parse_offsets(_archived(archive, r).decode("utf-8", "replace"), b, describe(r)) for r, b, _ in files.offsets}
+    commits = {}
+    for rel in files.commits:
+        name = rel.split("/", 1)[1]
+        if name.isdigit():
+            commits[int(name)] = parse_commit(_archived(archive, rel).decode("utf-8", "replace"), int(name), describe(rel))
+    if manifest.engine is not None:
+        source = EngineInference.from_json(manifest.engine, archive.describe(MANIFEST_NAME))
+    else:
+        source = infer_from_logs(offsets, commits)
+    target = parse_engine_version(requested) if requested else source.family
+    refuse_target(source, target, describe)
+    if target == SPARK_35:
+        refuse_for_35(offsets, commits, conf, describe)
+    rewrites = upgrade_schema_rewrites(source.family, target, files.early)
+    for rel in rewrites:
+        nullable_value_schema(_archived(archive, rel), describe(rel))
+    return source, target, rewrites
+
+
 def _new_metadata(archive: Location, new_id: str) -> bytes:
     rel = f"{CHECKPOINT_DIR}/metadata"
     meta = parse_query_metadata(archive.read_text(rel), archive.describe(rel))
@@ -232,8 +286,33 @@ def _plan_files(files: _Files, target_class: str, new_query_id: bool) -> list[di
     return plan
 
 
-def _publish(archive: Location, dst: Location, files: _Files, target_class: str, metadata: bytes | None) -> list[dict[str, Any]]:
+def _archived_commits(archive: Location, files: _Files) -> dict[int, CommitEntry]:
+    out = {}
+    for rel in files.commits:
+        name = rel.split("/", 1)[1]
+        if name.isdigit():
+            out[int(name)] = parse_commit(_archived(archive, rel).decode("utf-8", "replace"), int(name), archive.describe(f"{CHECKPOINT_DIR}/{rel}"))
+    return out
+
+
+def _written_uids(manifest: Manifest, tasks: list[ImportTask]) -> dict[int, list[list[str]]]:
+    """``stateUniqueIds`` of the versions the tasks wrote (stores in the archived operator order)."""
+    def index(t: ImportTask) -> int:
+        names = [s.name for s in manifest.operator(t.data_file.operator).stores]
+        return names.index(t.data_file.store) if t.data_file.store in names else 0
+
+    return uids_table((t.data_file.operator, t.data_file.partition, index(t), t.target_uid) for t in tasks if t.target_uid)
+
+
+def _publish(
+    archive: Location, dst: Location, files: _Files, target_class: str, metadata: bytes | None,
+    commits: dict[str, bytes] | None = None, schema_rewrites: list[str] | tuple[str, ...] = (),
+) -> list[dict[str, Any]]:
+    """``commits``: entries rewritten for the target's state checkpoint format (checkpoint/uids.py);
+    ``schema_rewrites``: schema files made nullable for the target engine (checkpoint/engine.py)."""
     out: list[dict[str, Any]] = []
+    commits = commits or {}
+    relaxed = set(schema_rewrites)
 
     def copy(rel: str) -> None:
         data = _archived(archive, rel)
@@ -245,14 +324,20 @@ def _publish(archive: Location, dst: Location, files: _Files, target_class: str,
         if rel in moved:
             data = point_schema_paths_at(_archived(archive, rel), dst, archive.describe(f"{CHECKPOINT_DIR}/{rel}"))
             out += _write_with_crc(dst, rel, data, crc_rel(rel) in files.early)
-        elif rel not in {crc_rel(m) for m in moved}:
+        elif rel in relaxed:
+            data = nullable_value_schema(_archived(archive, rel), archive.describe(f"{CHECKPOINT_DIR}/{rel}"))
+            out += _write_with_crc(dst, rel, data, crc_rel(rel) in files.early)
+        elif rel not in {crc_rel(m) for m in moved | relaxed}:
             copy(rel)
     for rel, batch, had_crc in files.offsets:
         entry = parse_offsets(_archived(archive, rel).decode("utf-8"), batch, archive.describe(f"{CHECKPOINT_DIR}/{rel}"))
         data = format_offsets(with_conf(entry, {PROVIDER_CONF: target_class})).encode("utf-8")
         out += _write_with_crc(dst, rel, data, had_crc)
     for rel in files.commits:
-        copy(rel)
+        if rel not in commits and rel not in {crc_rel(c) for c in commits}:
+            copy(rel)
+    for rel, data in sorted(commits.items()):
+        out += _write_with_crc(dst, rel, data, crc_rel(rel) in files.commits)
     faults.reached("before-metadata")
     if metadata is None:
         for rel in files.last:  # the real metadata is the commit point; its sidecar follows
@@ -274,6 +359,8 @@ def import_archive(
     jobs: int = 1,
     progress: Callable[[Any], None] = lambda r: None,
     on_plan: Callable[[int], None] = lambda n: None,
+    engine_version: str | None = None,
+    checkpoint_format_to: int | None = None,
 ) -> ImportReport:
     guard_target(archive, dst)
     target_class = class_name_for(to)
@@ -282,19 +369,25 @@ def import_archive(
     checked = check_archive(archive, manifest)
     files = _sort_files(manifest)
     conf = _check_logs(archive, manifest, files)
+    source_engine, engine, schema_rewrites = _engine_plan(archive, manifest, files, conf, engine_version)
     report = ImportReport(
         archive=archive.display, target=dst.display, query_id=manifest.query_id,
         new_query_id=str(uuid.uuid4()) if new_query_id else None, batch=manifest.batch_id,
         state_version=manifest.state_version, source_provider=manifest.provider_class, target_provider=target_class,
         dry_run=dry_run, checked_files=len(manifest.all_paths()), checked_bytes=checked,
+        source_engine=source_engine.to_json(), target_engine=engine, schema_rewrites=schema_rewrites,
     )
     write_conf = {**conf, PROVIDER_CONF: target_class}
+    fmt = target_format(manifest.checkpoint_format, target.name, checkpoint_format_to, dst.display)
+    report.checkpoint_format = {"source": manifest.checkpoint_format, "target": fmt}
+    seed = f"import:{manifest.query_id}:{manifest.batch_id}:{manifest.created_utc}:{target.name}"
     tasks = []
     for d in manifest.data_files:
         prefix = manifest.operator(d.operator).store(d.store).num_cols_prefix_key
         rel = store_rel(d.operator, d.store, d.partition)
+        uid = derived_uid(seed, d.operator, d.partition, d.store) if fmt == 2 else None
         tasks.append(ImportTask(archive, d, StoreDir(dst, rel, d.operator, d.partition, d.store), target.name,
-                                manifest.state_version, write_conf, prefix, dst.is_local))
+                                manifest.state_version, write_conf, prefix, dst.is_local, engine, uid))
     seen: set[tuple[int, str]] = set()
     for d in manifest.data_files:  # refuse stores the target cannot hold before anything is written
         if (d.operator, d.store) not in seen:
@@ -310,6 +403,9 @@ def import_archive(
                 "target_files": [f"{t.target.rel}/{n}" for n in target_names(target.name, manifest.state_version)],
             })
         report.files = _plan_files(files, target_class, new_query_id)
+        for f in report.files:
+            if f["path"] in schema_rewrites:
+                f.update(action="rewrite", change="value schema made nullable for engine 4.x")
         return report
 
     identity = {
@@ -320,6 +416,8 @@ def import_archive(
         "target_provider": target_class,
         "manifest_sha256": hashlib.sha256(archive.read_bytes(MANIFEST_NAME)).hexdigest(),
         "new_query_id": new_query_id,
+        "target_engine": engine,
+        "checkpoint_format": fmt,
     }
 
     def key_of(t: ImportTask) -> str:
@@ -354,7 +452,8 @@ def import_archive(
         )
     metadata = _new_metadata(archive, report.new_query_id) if report.new_query_id else None
     faults.reached("before-logs")
-    report.files = _publish(archive, dst, files, target_class, metadata)
+    commits = commits_for_target(_archived_commits(archive, files), manifest.batch_id, fmt, _written_uids(manifest, tasks))
+    report.files = _publish(archive, dst, files, target_class, metadata, commits, schema_rewrites)
     journal.finish(dst)
     return report
 
@@ -364,7 +463,7 @@ def _reverify(task: ImportTask, recorded: Digest) -> ImportResult | None:
     d = task.data_file
     if recorded != d.digest:
         return None
-    back = read_back_digest(task.provider, task.target, task.version, task.write_conf, task.num_cols_prefix_key)
+    back = read_back_digest(task.provider, task.target, task.version, task.write_conf, task.num_cols_prefix_key, task.target_uid)
     if back != d.digest:
         return None
     return ImportResult(d.operator, d.store, d.partition, d.digest, d.digest, back, ())
@@ -380,6 +479,8 @@ def render(report: ImportReport) -> str:
         f"  {identity}, batch {report.batch} (state version {report.state_version})",
         f"  provider {report.source_provider}",
         f"        -> {report.target_provider}",
+        f"  engine {report.source_engine.get('family')} -> {report.target_engine} "
+        f"(source written by {report.source_engine.get('family')}: {report.source_engine.get('evidence')})",
     ]
     if report.dry_run:
         for p in report.partitions:
@@ -399,6 +500,7 @@ def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
     i.add_argument("--dry-run", action="store_true", help="check the archive, print the plan, write nothing")
     i.add_argument("--new-query-id", action="store_true", help="give the restored checkpoint a fresh random query id (for clones)")
     add_target_arguments(i, "import")
+    add_checkpoint_format_argument(i)
     i.set_defaults(run=run)
 
 
@@ -410,6 +512,8 @@ def run(args: argparse.Namespace, ctx: Any) -> int:
         archive, dst, args.to, dry_run=args.dry_run, new_query_id=args.new_query_id, overwrite=args.overwrite,
         resume=args.resume,
         jobs=args.jobs, progress=ctx.progress.step, on_plan=ctx.progress.start,
+        engine_version=args.engine_version,
+        checkpoint_format_to=args.checkpoint_format,
     )
     ctx.progress.close()
     ctx.emit(report.to_json(), render(report))

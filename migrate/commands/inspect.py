@@ -9,8 +9,10 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
+from ..checkpoint.engine import infer_engine
 from ..checkpoint.logs import CODEC_CONF, PARTITIONS_CONF
 from ..checkpoint.model import Checkpoint, load_checkpoint
+from ..checkpoint.uids import checkpoint_format, partition_uid
 from ..errors import StateshiftError
 from ..storage import Location
 from .common import digest_partition
@@ -33,7 +35,10 @@ def describe(ckpt: Checkpoint, rows: bool = False) -> dict[str, Any]:
                     "newer_than_commit": [v for v in versions if v > ckpt.state_version],
                 }
                 try:
-                    files = provider.source_files(sp.dir, ckpt.state_version, _ctx(ckpt, sp.listing))
+                    uid = partition_uid(ckpt, sp)
+                    if uid is not None:
+                        entry["checkpoint_id"] = uid  # the id the commit log names for this version (format 2)
+                    files = provider.source_files(sp.dir, ckpt.state_version, _ctx(ckpt, sp.listing, uid))
                     entry["files"] = len(files)
                     entry["bytes"] = sum(f.size for f in files)
                     entry["rebuildable"] = True
@@ -41,7 +46,9 @@ def describe(ckpt: Checkpoint, rows: bool = False) -> dict[str, Any]:
                     entry["rebuildable"] = False
                     entry["problem"] = str(exc)
                 if rows and entry["rebuildable"]:
-                    digest, _ = digest_partition(sp, ckpt.provider_class, ckpt.state_version, ckpt.conf, info.num_cols_prefix_key)
+                    digest, _ = digest_partition(
+                        sp, ckpt.provider_class, ckpt.state_version, ckpt.conf, info.num_cols_prefix_key, partition_uid(ckpt, sp)
+                    )
                     entry["rows"] = digest.rows
                     entry["digest"] = digest.hexdigest
                 entries.append(entry)
@@ -54,8 +61,10 @@ def describe(ckpt: Checkpoint, rows: bool = False) -> dict[str, Any]:
         "provider": ckpt.provider_class,
         "layout": provider.name,
         "codec": ckpt.conf.get(CODEC_CONF, "lz4"),
+        "engine": infer_engine(ckpt, zip_evidence=rows).to_json(),  # --rows reads every zip anyway
         "shuffle_partitions": ckpt.conf.get(PARTITIONS_CONF),
         "latest_committed_batch": ckpt.latest_batch,
+        "checkpoint_format": checkpoint_format(ckpt),
         "state_version": ckpt.state_version,
         "watermark_ms": latest_offsets.watermark_ms,
         "batch_timestamp_ms": latest_offsets.timestamp_ms,
@@ -72,10 +81,10 @@ def _source_line(lines: tuple[str, ...], sid: str) -> str | None:
     return lines[i] if 0 <= i < len(lines) else None
 
 
-def _ctx(ckpt: Checkpoint, listing: Any) -> Any:
+def _ctx(ckpt: Checkpoint, listing: Any, uid: str | None = None) -> Any:
     from ..providers.base import ReadContext
 
-    return ReadContext(conf=ckpt.conf, listing=listing)
+    return ReadContext(conf=ckpt.conf, listing=listing, checkpoint_id=uid)
 
 
 def inspect(src: Location, rows: bool = False) -> dict[str, Any]:
@@ -87,7 +96,11 @@ def render(info: dict[str, Any]) -> str:
         f"checkpoint      {info['checkpoint']}",
         f"query id        {info['query_id']}",
         f"provider        {info['provider']} ({info['layout']} layout, codec {info['codec']})",
+        f"engine          {info['engine']['family']} wrote it last: {info['engine']['evidence']} ({info['engine']['evidence_file']})",
+        *[f"                {h}" for h in info["engine"]["hints"]],
         f"partitions      {info['shuffle_partitions']}",
+        f"state format    {info['checkpoint_format']}"
+        + (" (unique ids: <v>_<id>.zip/.changelog, v2 commits name the ids)" if info["checkpoint_format"] == 2 else ""),
         f"latest batch    {info['latest_committed_batch']} (offsets and commit present) -> state version {info['state_version']}",
         f"watermark       {info['watermark_ms']} ms",
         f"offsets log     batches {info['offsets_entries'][0]}..{info['offsets_entries'][1]}",

@@ -17,6 +17,15 @@ def render_convert(report: Any) -> str:
         f"query {d['query_id']}: latest consistent batch {d['batch']}, state version {d['state_version']}",
         f"provider {_short(d['source_provider'])} -> {_short(d['target_provider'])}",
     ]
+    if d.get("source_engine"):
+        e = d["source_engine"]
+        lines.append(f"engine {e['family']} -> {d['target_engine']} (source written by {e['family']}: {e['evidence']}, {e['evidence_file']})")
+    fmt = d.get("checkpoint_format") or {}
+    if fmt and (fmt.get("source") != 1 or fmt.get("target") != 1):
+        lines.append(
+            f"state checkpoint format {fmt['source']} -> {fmt['target']}"
+            + (" (unique ids in file names and commits)" if fmt["target"] == 2 else " (plain file names, v1 commits)")
+        )
     if d["uncommitted_batches"]:
         lines.append(
             f"uncommitted batch(es) {d['uncommitted_batches']}: offsets entries kept (rewritten); the engine re-runs them"

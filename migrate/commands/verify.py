@@ -11,6 +11,7 @@ from collections.abc import Callable
 from typing import Any
 
 from ..checkpoint.model import Checkpoint, load_checkpoint
+from ..checkpoint.uids import partition_uid
 from ..digest import Digest
 from ..storage import Location
 from .common import digest_partition
@@ -22,7 +23,7 @@ def digests(ckpt: Checkpoint, progress: Callable[[], None] = lambda: None) -> di
         for sp in op.partitions:
             prefix = op.store_info(sp.store_name).num_cols_prefix_key
             out[(sp.operator_id, sp.store_name, sp.partition)] = digest_partition(
-                sp, ckpt.provider_class, ckpt.state_version, ckpt.conf, prefix
+                sp, ckpt.provider_class, ckpt.state_version, ckpt.conf, prefix, partition_uid(ckpt, sp)
             )[0]
             progress()
     return out

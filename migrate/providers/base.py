@@ -62,6 +62,8 @@ class ReadContext:
     num_cols_prefix_key: int = 0
     listing: dict[str, Entry] | None = None  # the store dir listing if the caller has it
     extra: dict[str, str] = field(default_factory=dict)  # store properties, when the files cannot tell
+    #: unique id of the version to read (state checkpoint format 2: the commit log names it); None: format 1
+    checkpoint_id: str | None = None
 
     @property
     def codec(self) -> str:
@@ -76,6 +78,10 @@ class WriteContext:
     num_cols_prefix_key: int = 0
     write_crc: bool = True
     extra: dict[str, Any] = field(default_factory=dict)
+    #: engine family the target is written for (``checkpoint.engine``: "3.5" or "4.x")
+    engine: str = "4.x"
+    #: unique id to give the written version (state checkpoint format 2); None: format 1 names
+    checkpoint_id: str | None = None
 
     @property
     def codec(self) -> str:

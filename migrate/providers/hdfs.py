@@ -234,7 +234,9 @@ class HDFSProvider(Provider):
                 continue
             if m.group(2):
                 raise Unsupported(
-                    f"state file {name} carries a unique id (newer checkpoint format); not supported yet", where
+                    f"heap-map state file {name} carries a unique id (state checkpoint format 2), which the engine "
+                    "never writes for the heap map (it refuses that format: STATE_STORE_CHECKPOINT_IDS_NOT_SUPPORTED, "
+                    "observed on 4.3.0); not a layout this tool reads", where
                 )
             (deltas if m.group(3) == "delta" else snapshots)[int(m.group(1))] = name
         return deltas, snapshots

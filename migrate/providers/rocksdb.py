@@ -11,9 +11,19 @@ Observed on Spark 4.3.0 (bundled RocksDB 9.8.4), per store partition directory::
                              exists only for some versions (see rocksdb_changelog.py)
 
 Version V is ``V.zip`` when it exists, else the newest zip below it plus the changelogs up to V
-(or the changelogs 1..V alone). An empty partition version is a zip whose ``metadata`` lists no
-SST files and ``numKeys`` 0. What we write is always a full ``V.zip`` (the engine loads a zip
-for a version whatever its changelog setting, and writes changelogs after it).
+(or the changelogs 1..V alone).
+
+State checkpoint format 2 (see ``checkpoint/uids.py``): the files are ``<v>_<uid>.zip`` and
+``<v>_<uid>.changelog``, and ``ReadContext.checkpoint_id`` (from the commit log) says which id
+version V has. Version V is ``V_<uid>.zip`` when it exists, else the lineage in the header of
+``V_<uid>.changelog`` says which files it builds on: the newest zip of the lineage plus the
+lineage's changelogs after it. Files of other ids (retried or abandoned attempts) are ignored.
+Visible ``<name>.crc`` JSON checksum files (CRC32C) are verified when present. Written with
+``WriteContext.checkpoint_id``: ``V_<uid>.zip`` and its ``.crc`` JSON file.
+
+An empty partition version is a zip whose ``metadata`` lists no SST files and ``numKeys`` 0.
+What we write is always a full ``V.zip`` (the engine loads a zip for a version whatever its
+changelog setting, and writes changelogs after it).
 
 Rows (see rocksdb_keys.RowCodec): the RocksDB keys and values are the engine's row bytes with
 ONE leading encoding-version byte, 0x00, on both key and value (observed; stripping it gives
@@ -29,13 +39,15 @@ import os
 import re
 import shutil
 import tempfile
+import time
 import uuid
 from collections.abc import Iterable, Iterator
 
 import numpy as np
 import pyarrow as pa
 
-from ..codecs import codec_for, codec_of_stream
+from ..checkpoint.uids import checksum_name, render_checksum_file, verify_checksum_file
+from ..codecs import codec_of_stream
 from ..codecs.hadoop_crc import (
     DEFAULT_BYTES_PER_CHECKSUM,
     HEADER,
@@ -60,6 +72,7 @@ from .base import (
 from .facts import key_schema_property, parse_key_schema, read_key_schema
 from .rocksdb_changelog import (
     ChangelogReplay,
+    changelog_lineage,
     merge_delimiter,
     parse_changelog,
     replay_plan,
@@ -129,6 +142,22 @@ def _file_crc(path: str) -> bytes:
     return b"".join(parts)
 
 
+def _engine_conf(ctx: WriteContext, families: ColumnFamilies | None, where: str) -> dict[str, str]:
+    """The conf the table files are written with, for the target engine family.
+
+    Engine 3.5 (RocksDB 8.3.2) refuses table format_version 6 (observed), which is rocksdict's own
+    default, so the pinned value (default 5) must be at most 5; it wrote Snappy-compressed tables
+    (observed), so that is the default compression for it. It has no column families."""
+    if ctx.engine != "3.5":
+        return ctx.conf
+    if families is not None:
+        raise Unsupported("a store with column families (transformWithState) cannot be written for engine 3.5", where)
+    raw = ctx.conf.get(FORMAT_VERSION_CONF, "5").strip()
+    if not raw.isdigit() or int(raw) > 5:
+        raise Unsupported(f"{FORMAT_VERSION_CONF}={raw}: the RocksDB of engine 3.5 opens table format versions up to 5", where)
+    return {COMPRESSION_CONF: "snappy", **ctx.conf}
+
+
 def _prefix(store: StoreDir) -> str:
     return f"{store.rel.strip('/')}/" if store.rel.strip("/") else ""
 
@@ -153,8 +182,19 @@ class RocksDBProvider(Provider):
 
     # ---------------------------------------------------------------- layout
     def versions(self, listing: dict[str, Entry]) -> list[int]:
-        """Versions with a ``<v>.zip`` snapshot or a ``<v>.changelog``."""
-        return sorted(set(self.snapshot_versions(listing)) | set(self.changelog_versions(listing)))
+        """Versions with a snapshot zip or a changelog (``<v>.zip``, ``<v>_<uid>.zip``, ...)."""
+        with_ids = {v for v, _, _ in self.files_with_ids(listing)}
+        return sorted(set(self.snapshot_versions(listing)) | set(self.changelog_versions(listing)) | with_ids)
+
+    @staticmethod
+    def files_with_ids(listing: dict[str, Entry]) -> list[tuple[int, str, str]]:
+        """``(version, uid, name)`` of the zips and changelogs named with a unique id (format 2)."""
+        out = []
+        for name in listing:
+            m = _ZIP_WITH_ID.match(name) or _CHANGELOG_WITH_ID.match(name)
+            if m:
+                out.append((int(m.group(1)), m.group(2), name))
+        return sorted(out)
 
     def snapshot_versions(self, listing: dict[str, Entry]) -> list[int]:
         return sorted(int(m.group(1)) for name in listing if (m := _ZIP.match(name)))
@@ -166,15 +206,68 @@ class RocksDBProvider(Provider):
     def _listing(self, store: StoreDir, ctx: ReadContext) -> dict[str, Entry]:
         return ctx.listing if ctx.listing is not None else store.location.list_dir(store.rel)
 
-    def plan(self, store: StoreDir, version: int, listing: dict[str, Entry]) -> tuple[str | None, list[str]]:
+    def plan(
+        self, store: StoreDir, version: int, listing: dict[str, Entry], ctx: ReadContext | None = None
+    ) -> tuple[str | None, list[str]]:
         """(zip to restore or None for the empty store, changelog files to apply in order)."""
-        for other in sorted(listing):
-            m = _ZIP_WITH_ID.match(other) or _CHANGELOG_WITH_ID.match(other)
-            if m and int(m.group(1)) <= version:
-                raise Unsupported(
-                    f"state file {other} carries a unique id (newer checkpoint format); not supported yet",
-                    store.describe(other),
+        if ctx is not None and ctx.checkpoint_id is not None:
+            return self._plan_with_id(store, version, ctx.checkpoint_id, listing, ctx)
+        try:
+            return self._plan_plain(store, version, listing)
+        except CorruptInput:
+            named = [n for v, _, n in self.files_with_ids(listing) if v == version]
+            if named:
+                raise CorruptInput(
+                    f"version {version} exists only as files with a unique id ({named[0]}: state checkpoint format 2), "
+                    "and the commit log names no id for it",
+                    store.describe(named[0]),
+                ) from None
+            raise
+
+    def _plan_with_id(
+        self, store: StoreDir, version: int, uid: str, listing: dict[str, Entry], ctx: ReadContext
+    ) -> tuple[str | None, list[str]]:
+        """Format 2: the files of version ``version`` with id ``uid`` and the lineage they build on."""
+        ids = self.files_with_ids(listing)
+        zips = {(v, u) for v, u, n in ids if n.endswith(".zip")}
+        logs = {(v, u) for v, u, n in ids if n.endswith(".changelog")}
+        if (version, uid) in zips:
+            return f"{version}_{uid}.zip", []
+        name = f"{version}_{uid}.changelog"
+        if (version, uid) not in logs:
+            others = [n for v, u, n in ids if v == version]
+            hint = f"; this version has files of other attempts only: {', '.join(others[:2])}" if others else ""
+            raise CorruptInput(
+                f"the commit log names unique id {uid} for version {version}, but neither {version}_{uid}.zip "
+                f"nor {name} exists{hint}",
+                store.describe(name),
+            )
+        lineage = changelog_lineage(self._changelog_bytes(store, name, ctx), store.describe(name))
+        if lineage is None:
+            raise CorruptInput("changelog named with a unique id has no lineage header (v3)", store.describe(name))
+        if lineage and lineage[-1][0] >= version:
+            raise CorruptInput(f"lineage lists version {lineage[-1][0]}, not older than the file's own version {version}", store.describe(name))
+        chain = dict(lineage + [(version, uid)])
+        base = max((v for v, u in chain.items() if (v, u) in zips and v < version), default=None)
+        start = base if base is not None else 0
+        after = [v for v in sorted(chain) if v > start]
+        if after != list(range(start + 1, version + 1)):
+            missing = min(set(range(start + 1, version + 1)) - set(after))
+            if base is None and min(chain) > 1:
+                why = f"its lineage starts at version {min(chain)} and no zip of the lineage exists"
+            else:
+                why = f"its lineage skips version {missing}"
+            raise CorruptInput(f"cannot rebuild version {version}: {why}", store.describe(name))
+        for v in after:
+            if (v, chain[v]) not in logs:
+                raise CorruptInput(
+                    f"{v}_{chain[v]}.changelog, named by the lineage of {name}, is missing",
+                    store.describe(f"{v}_{chain[v]}.changelog"),
                 )
+        base_zip = f"{base}_{chain[base]}.zip" if base is not None else None
+        return base_zip, [f"{v}_{chain[v]}.changelog" for v in after]
+
+    def _plan_plain(self, store: StoreDir, version: int, listing: dict[str, Entry]) -> tuple[str | None, list[str]]:
         zips = self.snapshot_versions(listing)
         if version in zips:
             return f"{version}.zip", []
@@ -191,6 +284,8 @@ class RocksDBProvider(Provider):
         raw = store.location.read_bytes(f"{_prefix(store)}{zip_name}")
         if crc_name(zip_name) in listing:
             verify_crc(raw, store.location.read_bytes(f"{_prefix(store)}{crc_name(zip_name)}"), where)
+        if checksum_name(zip_name) in listing:
+            verify_checksum_file(raw, store.location.read_bytes(f"{_prefix(store)}{checksum_name(zip_name)}"), where)
         members = unzip_members(raw, where)
         if METADATA_MEMBER not in members:
             raise CorruptInput("zip has no 'metadata' member", where)
@@ -222,7 +317,7 @@ class RocksDBProvider(Provider):
 
     def source_files(self, store: StoreDir, version: int, ctx: ReadContext) -> list[WrittenFile]:
         listing = self._listing(store, ctx)
-        zip_name, changelogs = self.plan(store, version, listing)
+        zip_name, changelogs = self.plan(store, version, listing, ctx)
         out = [WrittenFile(f"{_prefix(store)}{name}", listing[name].size) for name in changelogs]
         if zip_name is None:
             return out
@@ -238,7 +333,7 @@ class RocksDBProvider(Provider):
     def store_properties(self, store: StoreDir, version: int, ctx: ReadContext) -> dict[str, str]:
         """The column-family table (stores with column families), or the key schema (prefix keys)."""
         listing = self._listing(store, ctx)
-        zip_name, changelogs = self.plan(store, version, listing)
+        zip_name, changelogs = self.plan(store, version, listing, ctx)
         table = None
         if zip_name is not None:
             table = column_families(self._metadata(store, zip_name, listing)[1], store.describe(zip_name))
@@ -263,13 +358,15 @@ class RocksDBProvider(Provider):
         raw = store.location.read_bytes(f"{_prefix(store)}{name}")
         if crc_name(name) in listing:
             verify_crc(raw, store.location.read_bytes(f"{_prefix(store)}{crc_name(name)}"), where)
+        if checksum_name(name) in listing:
+            verify_checksum_file(raw, store.location.read_bytes(f"{_prefix(store)}{checksum_name(name)}"), where)
         return codec_of_stream(raw, ctx.codec, where).decompress(raw, where)  # older versions may use another codec
 
     # ---------------------------------------------------------------- reading
     def read(self, store: StoreDir, version: int, ctx: ReadContext) -> Iterator[pa.RecordBatch]:
         check_supported(ctx.conf, store.describe())
         listing = self._listing(store, ctx)
-        zip_name, changelogs = self.plan(store, version, listing)
+        zip_name, changelogs = self.plan(store, version, listing, ctx)
         if zip_name is None and not changelogs:
             return
         where = store.describe(zip_name or changelogs[-1])
@@ -322,11 +419,16 @@ class RocksDBProvider(Provider):
     ) -> None:
         """Apply the changelog files, in order, to the restored (or empty) RocksDB in ``db_dir``."""
         db = open_for_replay(db_dir, store.describe(changelogs[0]))
+        chain = {int(m.group(1)): m.group(2) for n in changelogs if (m := _CHANGELOG_WITH_ID.match(n))}
         try:
             replay = ChangelogReplay(db, delimiter)
             for name in changelogs:
                 where = store.describe(name)
-                fmt, records = parse_changelog(self._changelog_bytes(store, name, ctx), where)
+                data = self._changelog_bytes(store, name, ctx)
+                for v, u in changelog_lineage(data, where) or []:
+                    if v in chain and chain[v] != u:
+                        raise CorruptInput(f"lineage names {v}_{u} for version {v}, the chain being rebuilt has {v}_{chain[v]}", where)
+                fmt, records = parse_changelog(data, where)
                 if fmt >= 2 and families is None:
                     self._refuse_families_without_snapshot(store, name, ctx)
                 if fmt == 1 and families is not None:
@@ -343,10 +445,24 @@ class RocksDBProvider(Provider):
             db.close()
 
     # ---------------------------------------------------------------- writing
+    @staticmethod
+    def _write_checksum_file(store: StoreDir, name: str, data: bytes, write_crc: bool) -> list[WrittenFile]:
+        rel = f"{_prefix(store)}{checksum_name(name)}"
+        body = render_checksum_file(data, int(time.time() * 1000))
+        store.location.remove(f"{_prefix(store)}{crc_name(checksum_name(name))}")
+        store.location.write_bytes(rel, body)
+        out = [WrittenFile(rel, len(body))]
+        if write_crc:
+            sidecar_rel = f"{_prefix(store)}{crc_name(checksum_name(name))}"
+            sidecar = make_crc(body)
+            store.location.write_bytes(sidecar_rel, sidecar)
+            out.append(WrittenFile(sidecar_rel, len(sidecar)))
+        return out
+
     def write(
         self, store: StoreDir, version: int, batches: Iterable[pa.RecordBatch], ctx: WriteContext
     ) -> list[WrittenFile]:
-        zip_name = f"{version}.zip"
+        zip_name = f"{version}_{ctx.checkpoint_id}.zip" if ctx.checkpoint_id else f"{version}.zip"
         where = store.describe(zip_name)
         check_supported(ctx.conf, where)
         families = parse_column_families(ctx.extra[COLUMN_FAMILIES], where) if ctx.extra.get(COLUMN_FAMILIES) else None
@@ -370,7 +486,7 @@ class RocksDBProvider(Provider):
             if internal_ids is not None and internal_ids.size:
                 internal[0] += int(np.isin(family_ids(keys, where), internal_ids).sum())
 
-        options = db_options(ctx.conf, where)
+        options = db_options(_engine_conf(ctx, families, where), where)
         tmp = tempfile.mkdtemp(prefix="stateshift-rocksdb-w-")
         try:
             encode = lambda b: codec.to_rocksdb(b.column("key"), b.column("value"), where)
@@ -398,7 +514,7 @@ class RocksDBProvider(Provider):
                 column_family_type_map=dict(families.internal) if families else {},
                 max_column_family_id=families.max_id if families else 0,
             )
-            data = zip_checkpoint(checkpoint, render_metadata(meta), where)
+            data = zip_checkpoint(checkpoint, render_metadata(meta, ctx.engine), where)
             crc_rel = f"{_prefix(store)}{crc_name(zip_name)}"
             store.location.remove(crc_rel)  # never leave a stale sidecar beside a rewritten zip
             store.location.write_bytes(f"{_prefix(store)}{zip_name}", data)  # the zip last: it commits the version
@@ -407,6 +523,8 @@ class RocksDBProvider(Provider):
                 sidecar = make_crc(data)
                 store.location.write_bytes(crc_rel, sidecar)
                 written.append(WrittenFile(crc_rel, len(sidecar)))
+            if ctx.checkpoint_id:  # format 2: the visible JSON checksum file beside the zip (observed)
+                written += self._write_checksum_file(store, zip_name, data, ctx.write_crc)
             return written
         finally:
             shutil.rmtree(tmp, ignore_errors=True)

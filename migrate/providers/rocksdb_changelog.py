@@ -25,8 +25,14 @@ big-endian, as Java's DataOutputStream writes):
       0x11 int keyLen, key, int valueLen, value   -- merge (list state: append one element)
       0x00                                        -- end
 
+* format v3 (state checkpoint format 2, ``<v>_<uid>.changelog``; observed on 4.3.0), header
+  ``writeUTF("v3")`` then ``writeUTF(lineage JSON)`` (see ``checkpoint/uids.py``), then v1
+  records. :func:`changelog_lineage` returns the lineage; ``parse_changelog`` reports the record
+  format (1).
+
 Keys and values are the RocksDB bytes themselves (encoding-version byte, prefix-key layout and
-column-family id included). Other headers (``v3``, ``v4``: newer checkpoint formats) are refused.
+column-family id included). Header ``v4`` (column families with unique ids; not observed) is
+refused.
 A v1 file cannot be told from a versioned one by a magic number; a v1 file whose first key is
 161 330 bytes long or more and starts like a header would be misread (keys that long do not
 occur in practice; common practice for this file family).
@@ -89,10 +95,36 @@ def parse_changelog(data: bytes, where: str) -> tuple[int, list[Record]]:
     """(format version, records in file order) of one decompressed changelog."""
     version = format_version(data)
     if version == 1:
-        return 1, list(_v1_records(data, where))
+        return 1, list(_v1_records(data, 0, where))
     if version == 2:
         return 2, list(_v2_records(data, 4, where))
-    raise Unsupported(f"changelog format v{version} is not supported (known: v1, v2)", where)
+    if version == 3:
+        return 1, list(_v1_records(data, _lineage_end(data, where), where))
+    raise Unsupported(f"changelog format v{version} is not supported (known: v1, v2, v3)", where)
+
+
+def _lineage_end(data: bytes, where: str) -> int:
+    """Offset of the first record of a v3 file (after ``writeUTF("v3")`` and the lineage)."""
+    if len(data) < 6:
+        raise CorruptInput("changelog v3 header is truncated (no lineage length)", where)
+    (n,) = struct.unpack_from(">H", data, 4)
+    if 6 + n > len(data):
+        raise CorruptInput(f"changelog v3 lineage of {n} bytes runs past the end of the file", where)
+    return 6 + n
+
+
+def changelog_lineage(data: bytes, where: str) -> list[tuple[int, str]] | None:
+    """The lineage ``[(version, uid), ...]`` in a v3 changelog's header; None for v1/v2 files."""
+    if format_version(data) != 3:
+        return None
+    from ..checkpoint.uids import parse_lineage
+
+    end = _lineage_end(data, where)
+    try:
+        text = data[6:end].decode("utf-8")
+    except UnicodeDecodeError:
+        raise CorruptInput("changelog v3 lineage is not valid UTF-8", where) from None
+    return parse_lineage(text, where)
 
 
 def _int(data: bytes, pos: int, what: str, where: str) -> int:
@@ -107,8 +139,7 @@ def _bytes(data: bytes, pos: int, n: int, what: str, where: str) -> bytes:
     return data[pos : pos + n]
 
 
-def _v1_records(data: bytes, where: str) -> Iterator[Record]:
-    pos = 0
+def _v1_records(data: bytes, pos: int, where: str) -> Iterator[Record]:
     while True:
         klen = _int(data, pos, "a key length", where)
         pos += 4
@@ -159,15 +190,21 @@ def _v2_records(data: bytes, pos: int, where: str) -> Iterator[Record]:
         raise CorruptInput(f"changelog has {len(data) - pos} unexpected bytes after its end record", where)
 
 
-def render_changelog(records: Iterable[Record], version: int = 1) -> bytes:
-    """The decompressed bytes of a changelog (the reverse of :func:`parse_changelog`)."""
+def render_changelog(records: Iterable[Record], version: int = 1, lineage: list[tuple[int, str]] | None = None) -> bytes:
+    """The decompressed bytes of a changelog (the reverse of :func:`parse_changelog`); version 3
+    takes the ``lineage`` for its header."""
     parts: list[bytes] = []
     if version == 2:
         parts.append(b"\x00\x02v2")
+    elif version == 3:
+        from ..checkpoint.uids import render_lineage
+
+        text = render_lineage(lineage or []).encode("utf-8")
+        parts.append(b"\x00\x02v3" + struct.pack(">H", len(text)) + text)
     elif version != 1:
-        raise Unsupported(f"changelog format v{version} cannot be written (known: v1, v2)")
+        raise Unsupported(f"changelog format v{version} cannot be written (known: v1, v2, v3)")
     for r in records:
-        if version == 1 and r.kind == MERGE:
+        if version in (1, 3) and r.kind == MERGE:
             raise Unsupported("changelog format v1 has no merge records")
         if version == 2:
             parts.append(bytes([_V2_BYTES[r.kind]]))

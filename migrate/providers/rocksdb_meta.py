@@ -155,8 +155,11 @@ def parse_metadata(data: bytes, where: str) -> VersionMetadata:
     )
 
 
-def render_metadata(meta: VersionMetadata) -> bytes:
-    """The ``metadata`` member for ``meta``, with the field order and spacing the engine writes."""
+def render_metadata(meta: VersionMetadata, engine: str = "4.x") -> bytes:
+    """The ``metadata`` member for ``meta``, with the field order and spacing the engine writes.
+
+    For engine ``3.5`` only the fields 3.5.9 writes (observed: ``sstFiles``, ``numKeys``; it has no
+    column families, which the caller refuses before writing)."""
     obj: dict[str, Any] = {
         "sstFiles": [
             {"localFileName": f.local_name, "dfsSstFileName": f.dfs_name, "sizeBytes": f.size} for f in meta.sst_files
@@ -167,6 +170,8 @@ def render_metadata(meta: VersionMetadata) -> bytes:
             {"localFileName": f.local_name, "dfsLogFileName": f.dfs_name, "sizeBytes": f.size} for f in meta.log_files
         ]
     obj["numKeys"] = meta.num_keys
+    if engine == "3.5":
+        return (_HEADER + "\n" + json.dumps(obj, separators=(",", ":"))).encode("utf-8")
     obj["numInternalKeys"] = meta.num_internal_keys
     obj["columnFamilyMapping"] = meta.column_family_mapping
     obj["columnFamilyTypeMap"] = meta.column_family_type_map

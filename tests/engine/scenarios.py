@@ -36,6 +36,45 @@ Row = tuple[Any, ...]
 BatchRows = dict[int, list[Row]]
 
 
+def engine_version() -> tuple[int, int] | None:
+    """(major, minor) of the installed pyspark, or None when it cannot be imported."""
+    try:
+        import pyspark
+    except Exception:  # noqa: BLE001 - ImportError, or a broken install (conftest reports it)
+        return None
+    major, minor = pyspark.__version__.split(".")[:2]
+    return int(major), int(minor)
+
+
+#: the suite runs under pyspark 3.5.x (second CI venv) instead of 4.x; tests branch on what
+#: 3.5 writes differently (tests/fixtures/engine_versions/FINDINGS.md)
+ENGINE_35 = engine_version() == (3, 5)
+#: the engine family as stateshift names it (``--engine-version``, ``inspect``)
+ENGINE_FAMILY = "3.5" if ENGINE_35 else "4.x"
+
+
+def operator_stores(checkpoint: str | os.PathLike) -> dict[int, list[str]]:
+    """Operator id -> its store names, as the engine recorded them.
+
+    4.x: from the operator metadata ``state/<op>/_metadata/metadata`` (which must exist). 3.5
+    writes no operator metadata (observed; asserted here): the store names are the folders of
+    partition 0 (join stores), else the one ``default`` store.
+    """
+    out = {}
+    for op in sorted(Path(checkpoint, "state").iterdir()):
+        if not op.name.isdigit():
+            continue
+        meta_file = op / "_metadata" / "metadata"
+        if ENGINE_35:
+            assert not meta_file.exists(), f"3.5 wrote operator metadata {meta_file}, which it was never seen to write"
+            named = sorted(d.name for d in (op / "0").iterdir() if d.is_dir() and d.name not in ("_metadata", "SSTs"))
+            out[int(op.name)] = named or ["default"]
+        else:
+            meta = meta_file.read_text().split("\n", 1)[1]
+            out[int(op.name)] = [s["storeName"] for s in json.loads(meta)["stateStoreInfo"]]
+    return out
+
+
 @dataclass(frozen=True)
 class Scenario:
     """One stateful streaming query and the data that drives it.

@@ -27,6 +27,7 @@ from __future__ import annotations
 import json
 import shutil
 import time
+import zipfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -61,13 +62,8 @@ def _cli_json(*args: str) -> dict:
 
 
 def _operator_stores(checkpoint: Path) -> dict[int, list[str]]:
-    """Operator id -> the store names its operator metadata lists."""
-    out = {}
-    for op in sorted((checkpoint / "state").iterdir()):
-        if op.name.isdigit():
-            meta = (op / "_metadata" / "metadata").read_text().split("\n", 1)[1]
-            out[int(op.name)] = [s["storeName"] for s in json.loads(meta)["stateStoreInfo"]]
-    return out
+    """Operator id -> the store names its operator metadata lists (3.5: its folders)."""
+    return sc.operator_stores(checkpoint)
 
 
 def _assert_store_layout(checkpoint: Path, source: Path, stores: dict[int, list[str]], partitions: int) -> None:
@@ -109,6 +105,32 @@ def assert_new_versions_written_by(checkpoint: Path, provider: str, versions: ra
                 assert files["delta"] and not files["zip"], f"{store}: version {v} not written by the heap map"
 
 
+def assert_heap_map_files_in_codec(checkpoint: Path, codec: str) -> int:
+    """Every heap-map state file under ``checkpoint`` is a ``codec`` stream (told from its first
+    bytes); returns how many there are."""
+    from migrate.codecs import codec_for, codec_of_stream
+
+    files = [p for p in (checkpoint / "state").rglob("*") if p.suffix in (".delta", ".snapshot")]
+    for path in files:
+        got = codec_of_stream(path.read_bytes(), "lz4")
+        assert got is codec_for(codec), f"{path}: a {got.name} stream, expected {codec}"
+    return len(files)
+
+
+def _zip_fields(store: Path, version: int) -> set[str]:
+    with zipfile.ZipFile(store / f"{version}.zip") as z:
+        return set(json.loads(z.read("metadata").decode().split("\n", 1)[1]))
+
+
+def _assert_zip_fields_like_the_engine(checkpoint: Path, ours: int, engines: int, stores: dict, partitions: int) -> None:
+    """The zip ``metadata`` stateshift wrote (version ``ours``) has the fields the engine itself then
+    wrote in the same store (version ``engines``): 3.5 and 4.x write different sets (FINDINGS.md)."""
+    for store in _store_dirs(checkpoint, stores, partitions):
+        assert _zip_fields(store, ours) == _zip_fields(store, engines), f"{store}: zip metadata fields differ from the engine's"
+        if sc.ENGINE_35:
+            assert _zip_fields(store, ours) == {"sstFiles", "numKeys"}, store
+
+
 def _moved_rows_by_store(report: dict) -> dict[tuple[int, str], int]:
     out: dict[tuple[int, str], int] = {}
     for p in report["partitions"]:
@@ -146,6 +168,9 @@ def _first_run_and_move(spark, scenario, root: Path, source: str) -> Moved:
     assert first, f"{scenario.name}: the first run on {source} produced no output rows"
     pinned = offsets_entries(src)[0]["conf"]
     assert pinned[sc.PROVIDER_CONF] == sc.PROVIDERS[source]
+    assert pinned[sm.CODEC_CONF] == sm.SCENARIO_CODEC[scenario.name]
+    if source == "hdfs":
+        assert assert_heap_map_files_in_codec(src, sm.SCENARIO_CODEC[scenario.name]) > 0
     if sm.FMGWS_VERSION_CONF in sm.SESSION_CONF[scenario.name]:  # the engine pins the state format
         assert pinned[sm.FMGWS_VERSION_CONF] == sm.SESSION_CONF[scenario.name][sm.FMGWS_VERSION_CONF]
     last_batch = sc.batch_ids_in_commits(src)[-1]
@@ -159,6 +184,16 @@ def _first_run_and_move(spark, scenario, root: Path, source: str) -> Moved:
     converted = root / f"converted-{target}"
     convert_report = _cli_json("convert", str(src), str(converted), "--to", target)
     assert convert_report["verified"] is True
+    # the engine that wrote the source is recognised, and the target is written for it by default
+    assert convert_report["source_engine"]["family"] == sc.ENGINE_FAMILY, convert_report["source_engine"]
+    assert convert_report["target_engine"] == sc.ENGINE_FAMILY
+    joins = sorted(f"state/{op}/0/{n}/_metadata/schema" for op, names in stores.items() for n in names if n[:5] in ("left-", "right"))
+    if sc.ENGINE_35:
+        # written for 4.x, a 3.5 join's value schemas become nullable (the restart on 4.x is proven in
+        # test_engine_upgrade_35_to_4_engine.py); nothing else is rewritten; the dry run writes nothing
+        plan = _cli_json("convert", str(src), str(root / "for-4"), "--to", target, "--engine-version", "4.x", "--dry-run")
+        assert plan["target_engine"] == "4.x" and plan["schema_rewrites"] == joins and not (root / "for-4").exists()
+    assert convert_report["schema_rewrites"] == []  # same engine: schema files verbatim
     archive = root / "archive"
     assert _cli_json("export", str(src), str(archive))["batch"] == last_batch
     archived = tree_digest(archive)
@@ -213,9 +248,13 @@ def test_operator_state_moves_and_continues(spark, java_functions, tmp_path, sce
             assert out == control_out, f"{m.source} -> {role} {m.target}: continued output differs from the control"
             assert sc.batch_ids_in_commits(rebuilt)[-1] == control_last
             assert_new_versions_written_by(rebuilt, m.target, new_versions, m.stores, m.partitions)
+            if m.target == "rocksdb":
+                _assert_zip_fields_like_the_engine(rebuilt, m.last_batch + 1, control_last + 1, m.stores, m.partitions)
             named = {meta["conf"].get(sc.PROVIDER_CONF) for meta in offsets_entries(rebuilt).values()}
             assert named == {sc.PROVIDERS[m.target]}, f"{m.source} -> {role}: offsets name {named}"
             assert _operator_stores(rebuilt) == m.stores
+            if m.target == "hdfs":  # the snapshot we wrote and the engine's new deltas: the pinned codec
+                assert assert_heap_map_files_in_codec(rebuilt, sm.SCENARIO_CODEC[scenario_name]) > 0
 
         # (4)
         assert tree_digest(m.src) == m.before, f"{m.source}: the source checkpoint changed"

@@ -41,6 +41,16 @@ from migrate.rows.unsafe_row import decode_rows_report, encode_rows
 
 pytestmark = pytest.mark.engine
 
+
+def _to_arrow(df) -> pa.Table:
+    """The rows of ``df`` as an Arrow table: ``DataFrame.toArrow`` (pyspark 4.x); 3.5 has no public
+    form, so its Arrow collection (the one its ``toPandas`` uses) is taken instead."""
+    if hasattr(df, "toArrow"):
+        return df.toArrow()
+    batches = df._collect_as_arrow()
+    assert batches, "the engine returned no Arrow batches"
+    return pa.Table.from_batches(batches)
+
 HDFS_PROVIDER = "org.apache.spark.sql.execution.streaming.state.HDFSBackedStateStoreProvider"
 GROUPS = 40  # enough keys that a wrong hash of any one key type shows
 
@@ -260,7 +270,7 @@ def _run_query(spark, tmp: Path):
                            "CAST(extract(HOUR FROM first_ci) * 3600000000 + extract(MINUTE FROM"
                            " first_ci) * 60000000 + extract(SECOND FROM first_ci) * 1000000"
                            " AS BIGINT) AS ci_micros").drop("first_ci")
-        batches[batch_id] = df.toArrow()
+        batches[batch_id] = _to_arrow(df)
 
     previous = spark.conf.get("spark.sql.streaming.stateStore.providerClass", None)
     spark.conf.set("spark.sql.streaming.stateStore.providerClass", HDFS_PROVIDER)
@@ -414,11 +424,13 @@ def test_key_hash_matches_the_engine_hash_function(spark):
         *[f"CASE WHEN id % 13 = 12 THEN NULL ELSE {sql} END AS {name}" for name, sql in HASHED])
     names = [name for name, _ in HASHED]
     engine = df.selectExpr(*[f"hash({n}) AS {n}" for n in names],
-                           f"hash({', '.join(names)}) AS all_columns").toArrow()
+                           f"hash({', '.join(names)}) AS all_columns")
+    engine = _to_arrow(engine)
     schema = spark_type_from_json(df.schema.json())
     # the engine has no Arrow form for year-month intervals: take their months (physical value)
     values = df.selectExpr(*[f"extract(YEAR FROM {n}) * 12 + extract(MONTH FROM {n}) AS {n}"
-                             if n == "c_ymi" else n for n in names]).toArrow()
+                             if n == "c_ymi" else n for n in names])
+    values = _to_arrow(values)
     columns = pa.StructArray.from_arrays([c.combine_chunks() for c in values.columns],
                                          names=values.column_names)
     for i, f in enumerate(schema.fields):

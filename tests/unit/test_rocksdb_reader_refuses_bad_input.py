@@ -141,11 +141,14 @@ def test_missing_version_and_version_zero(tmp_path: Path) -> None:
     assert _read(part, 0) == 0  # version 0 is the empty store the engine starts from
 
 
-def test_unique_id_zip_is_unsupported(tmp_path: Path) -> None:
+def test_unique_id_zip_needs_the_id_from_the_commit_log(tmp_path: Path) -> None:
     part = _engine_copy(tmp_path)
     shutil.copy(part / "3.zip", part / "4_5f1c0de2-aaaa-bbbb-cccc-0123456789ab.zip")
-    with pytest.raises(Unsupported, match="unique id"):
+    with pytest.raises(CorruptInput, match="4_5f1c0de2-aaaa-bbbb-cccc-0123456789ab.zip.*commit log names no id"):
         _read(part, 4)
+    store = StoreDir(open_location(str(part)), "", 0, 0)
+    ctx = ReadContext(checkpoint_id="5f1c0de2-aaaa-bbbb-cccc-0123456789ab")
+    assert sum(b.num_rows for b in RocksDBProvider().read(store, 4, ctx)) == _read(part, 3)
 
 
 @pytest.mark.parametrize(
