@@ -57,31 +57,10 @@ def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item
 def spark():
     """A local[2] SparkSession shared by all engine tests, stopped at the end of the session."""
     engine_required()
-    from pyspark.sql import SparkSession
+    import scenarios
 
-    os.environ.setdefault("PYSPARK_PYTHON", sys.executable)
-    os.environ.setdefault("PYSPARK_DRIVER_PYTHON", sys.executable)
     scratch = tempfile.mkdtemp(prefix="stateshift-spark-")
-    session = (
-        SparkSession.builder.master("local[2]")
-        .appName("stateshift-engine-tests")
-        .config("spark.ui.enabled", "false")
-        .config("spark.ui.showConsoleProgress", "false")
-        .config("spark.driver.memory", "1g")
-        .config("spark.sql.shuffle.partitions", "2")
-        .config("spark.default.parallelism", "2")
-        .config("spark.local.dir", scratch)
-        .config("spark.sql.warehouse.dir", os.path.join(scratch, "warehouse"))
-        .config("spark.driver.extraJavaOptions", f"-Dderby.system.home={scratch}")
-        .config("spark.sql.session.timeZone", "UTC")
-        .config("spark.sql.streaming.stopTimeout", "60s")
-        # Keep background state maintenance (snapshots, cleanup) from touching a checkpoint
-        # after its query stopped, so "source unchanged" measures the tool, not the engine.
-        .config("spark.sql.streaming.stateStore.maintenanceInterval", "3600s")
-        .config("spark.sql.adaptive.enabled", "false")
-        .getOrCreate()
-    )
-    session.sparkContext.setLogLevel("ERROR")
+    session = scenarios.local_session("stateshift-engine-tests", scratch)
     try:
         yield session
     finally:

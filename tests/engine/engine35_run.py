@@ -14,7 +14,6 @@ from __future__ import annotations
 
 import importlib
 import json
-import os
 import shutil
 import sys
 import tempfile
@@ -27,31 +26,11 @@ def main(argv: list[str]) -> int:
     module, name, input_dir, checkpoint, provider = argv
     provider = None if provider == "-" else provider
     import pyspark
-    from pyspark.sql import SparkSession
+    import scenarios as sc
 
-    os.environ.setdefault("PYSPARK_PYTHON", sys.executable)
-    os.environ.setdefault("PYSPARK_DRIVER_PYTHON", sys.executable)
     scratch = tempfile.mkdtemp(prefix="stateshift-spark35-")
-    spark = (
-        SparkSession.builder.master("local[2]")
-        .appName("stateshift-engine35-run")
-        .config("spark.ui.enabled", "false")
-        .config("spark.ui.showConsoleProgress", "false")
-        .config("spark.driver.memory", "1g")
-        .config("spark.sql.shuffle.partitions", "2")
-        .config("spark.default.parallelism", "2")
-        .config("spark.local.dir", scratch)
-        .config("spark.sql.warehouse.dir", os.path.join(scratch, "warehouse"))
-        .config("spark.driver.extraJavaOptions", f"-Dderby.system.home={scratch}")
-        .config("spark.sql.session.timeZone", "UTC")
-        .config("spark.sql.streaming.stateStore.maintenanceInterval", "3600s")
-        .config("spark.sql.adaptive.enabled", "false")
-        .getOrCreate()
-    )
-    spark.sparkContext.setLogLevel("ERROR")
+    spark = sc.local_session("stateshift-engine35-run", scratch)
     try:
-        import scenarios as sc
-
         mod = importlib.import_module(module)
         if hasattr(mod, "run_named"):
             out = mod.run_named(spark, name, input_dir, checkpoint, provider)

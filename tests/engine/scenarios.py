@@ -53,6 +53,40 @@ ENGINE_35 = engine_version() == (3, 5)
 ENGINE_FAMILY = "3.5" if ENGINE_35 else "4.x"
 
 
+def local_session(app_name: str, scratch: str) -> Any:
+    """The engine session every engine test uses (``conftest.spark``, and ``engine35_run`` in the
+    3.5 venv): local[2], 2 shuffle partitions, UTC, no UI; ``scratch`` holds its local files.
+
+    State maintenance runs once an hour, so background snapshots and cleanup never touch a
+    checkpoint after its query stopped ("source unchanged" then measures the tool, not the engine).
+    """
+    import sys
+
+    from pyspark.sql import SparkSession
+
+    os.environ.setdefault("PYSPARK_PYTHON", sys.executable)
+    os.environ.setdefault("PYSPARK_DRIVER_PYTHON", sys.executable)
+    session = (
+        SparkSession.builder.master("local[2]")
+        .appName(app_name)
+        .config("spark.ui.enabled", "false")
+        .config("spark.ui.showConsoleProgress", "false")
+        .config("spark.driver.memory", "1g")
+        .config("spark.sql.shuffle.partitions", "2")
+        .config("spark.default.parallelism", "2")
+        .config("spark.local.dir", scratch)
+        .config("spark.sql.warehouse.dir", os.path.join(scratch, "warehouse"))
+        .config("spark.driver.extraJavaOptions", f"-Dderby.system.home={scratch}")
+        .config("spark.sql.session.timeZone", "UTC")
+        .config("spark.sql.streaming.stopTimeout", "60s")
+        .config("spark.sql.streaming.stateStore.maintenanceInterval", "3600s")
+        .config("spark.sql.adaptive.enabled", "false")
+        .getOrCreate()
+    )
+    session.sparkContext.setLogLevel("ERROR")
+    return session
+
+
 def operator_stores(checkpoint: str | os.PathLike) -> dict[int, list[str]]:
     """Operator id -> its store names, as the engine recorded them.
 
