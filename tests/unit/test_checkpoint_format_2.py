@@ -158,33 +158,31 @@ def _chain(src: Path, part: str) -> dict[int, Path]:
     return {int(p.name.split("_")[0]): p for p in (src / part).glob("*.changelog")}
 
 
-def test_lineage_naming_a_missing_changelog_is_refused(tmp_path: Path) -> None:
+_STRANGER = "feedface-0000-4000-8000-000000000000"  # an id no file of the fixture has
+
+
+@pytest.mark.parametrize(
+    "version,lineage,problem",
+    [
+        # a lineage naming a changelog that does not exist
+        (4, lambda ids: [(1, ids[1]), (2, _STRANGER), (3, ids[3])],
+         rf"2_{_STRANGER}.changelog, named by the lineage of 4_"),
+        # a lineage that skips a version
+        (4, lambda ids: [(1, ids[1]), (3, ids[3])],
+         r"4_.*\.changelog: cannot rebuild version 4: its lineage skips version 2"),
+        # lineages inside one chain that disagree
+        (3, lambda ids: [(1, ids[1]), (2, _STRANGER)],
+         r"3_.*\.changelog: lineage names 2_feedface.* the chain being rebuilt has 2_"),
+    ],
+    ids=["names-a-missing-changelog", "skips-a-version", "disagrees-inside-the-chain"],
+)
+def test_bad_lineage_is_refused_naming_the_changelog(tmp_path: Path, version: int, lineage, problem: str) -> None:
     src = _copy(tmp_path, "agg_rocksdb_changelog_ckptv2")
     chain = _chain(src, "state/0/0")
     ids = {v: p.name.split("_")[1].split(".")[0] for v, p in chain.items()}
-    _rewrite_changelog(chain[4], [(1, ids[1]), (2, "feedface-0000-4000-8000-000000000000"), (3, ids[3])])
+    _rewrite_changelog(chain[version], lineage(ids))
     ckpt = _ckpt(src)
-    with pytest.raises(CorruptInput, match=r"2_feedface-0000-4000-8000-000000000000.changelog, named by the lineage of 4_"):
-        _read_rows(ckpt, ckpt.store_partitions()[0])
-
-
-def test_lineage_that_skips_a_version_is_refused(tmp_path: Path) -> None:
-    src = _copy(tmp_path, "agg_rocksdb_changelog_ckptv2")
-    chain = _chain(src, "state/0/0")
-    ids = {v: p.name.split("_")[1].split(".")[0] for v, p in chain.items()}
-    _rewrite_changelog(chain[4], [(1, ids[1]), (3, ids[3])])
-    ckpt = _ckpt(src)
-    with pytest.raises(CorruptInput, match=r"4_.*\.changelog: cannot rebuild version 4: its lineage skips version 2"):
-        _read_rows(ckpt, ckpt.store_partitions()[0])
-
-
-def test_lineages_that_disagree_inside_the_chain_are_refused(tmp_path: Path) -> None:
-    src = _copy(tmp_path, "agg_rocksdb_changelog_ckptv2")
-    chain = _chain(src, "state/0/0")
-    ids = {v: p.name.split("_")[1].split(".")[0] for v, p in chain.items()}
-    _rewrite_changelog(chain[3], [(1, ids[1]), (2, "feedface-0000-4000-8000-000000000000")])
-    ckpt = _ckpt(src)
-    with pytest.raises(CorruptInput, match=r"3_.*\.changelog: lineage names 2_feedface.* the chain being rebuilt has 2_"):
+    with pytest.raises(CorruptInput, match=problem):
         _read_rows(ckpt, ckpt.store_partitions()[0])
 
 
