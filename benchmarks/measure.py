@@ -4,7 +4,11 @@
 * ``max_rss_mb``: the largest resident set of any one process of the tree (``ru_maxrss``);
 * ``tree_rss_mb``: the largest sum of resident sets over the whole process tree, sampled from
   ``/proc`` every 20 ms (worker processes of ``--jobs`` run at the same time, so this is what the
-  machine must hold);
+  machine must hold). Pages the workers share with the fork server they were forked from (the
+  imported libraries) count once per process here;
+* ``tree_pss_mb``: the same peak over the proportional set sizes (``Pss`` in
+  ``/proc/<pid>/smaps_rollup``: a page shared by n processes counts 1/n in each; a Linux kernel
+  fact, see proc(5)), i.e. the memory the tree really occupies;
 * ``load``: the 1-minute load average before and after (other work on the machine shows here).
 """
 
@@ -25,6 +29,7 @@ class Measured:
     cpu_s: float
     max_rss_mb: float
     tree_rss_mb: float
+    tree_pss_mb: float
     load_before: float
     load_after: float
     stdout: str
@@ -54,14 +59,35 @@ def _rss_kb(pid: int) -> int:
         return 0
 
 
-def tree_rss_kb(root: int) -> int:
+def _pss_kb(pid: int) -> int:
+    try:
+        with open(f"/proc/{pid}/smaps_rollup") as f:
+            for line in f:
+                if line.startswith("Pss:"):
+                    return int(line.split()[1])
+    except OSError:
+        pass
+    return 0
+
+
+def _tree(root: int) -> list[int]:
     kids = _children()
-    total, todo = 0, [root]
+    out, todo = [], [root]
     while todo:
         pid = todo.pop()
-        total += _rss_kb(pid)
+        out.append(pid)
         todo.extend(kids.get(pid, []))
-    return total
+    return out
+
+
+def tree_rss_kb(root: int) -> int:
+    return sum(_rss_kb(pid) for pid in _tree(root))
+
+
+def tree_memory_kb(root: int) -> tuple[int, int]:
+    """(sum of RSS, sum of PSS) over the process tree below ``root``, in KiB."""
+    pids = _tree(root)
+    return sum(_rss_kb(p) for p in pids), sum(_pss_kb(p) for p in pids)
 
 
 def run(argv: list[str], env: dict[str, str] | None = None, cwd: str | None = None, interval: float = 0.02) -> Measured:
@@ -70,12 +96,13 @@ def run(argv: list[str], env: dict[str, str] | None = None, cwd: str | None = No
     with open(out_path + ".out", "wb") as out, open(out_path + ".err", "wb") as err:
         t0 = time.perf_counter()
         proc = subprocess.Popen(argv, stdout=out, stderr=err, env=env, cwd=cwd)
-        peak = [0]
+        peak = [0, 0]  # tree RSS, tree PSS
         done = threading.Event()
 
         def sample() -> None:
             while not done.is_set():
-                peak[0] = max(peak[0], tree_rss_kb(proc.pid))
+                rss, pss = tree_memory_kb(proc.pid)
+                peak[0], peak[1] = max(peak[0], rss), max(peak[1], pss)
                 done.wait(interval)
 
         sampler = threading.Thread(target=sample, daemon=True)
@@ -98,6 +125,7 @@ def run(argv: list[str], env: dict[str, str] | None = None, cwd: str | None = No
         cpu_s=usage.ru_utime + usage.ru_stime,
         max_rss_mb=usage.ru_maxrss / 1024,
         tree_rss_mb=peak[0] / 1024,
+        tree_pss_mb=peak[1] / 1024,
         load_before=load_before,
         load_after=os.getloadavg()[0],
         stdout=stdout,
