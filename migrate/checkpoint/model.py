@@ -182,12 +182,13 @@ def _load_operator(loc: Location, op_id: int) -> Operator:
                 parts.append(StorePartition(StoreDir(loc, srel, op_id, p, sname), slisting))
     if not stores:
         seen = sorted({sp.store_name for sp in parts})
-        prefix = _session_prefix(loc, f"{rel}/0") if seen == ["default"] and 0 in partitions else 0
+        part0 = next((sp for sp in parts if sp.dir.partition == 0), None)
+        prefix = _session_prefix(loc, part0.dir.rel, part0.listing) if seen == ["default"] and part0 else 0
         stores = [StoreInfo(s, prefix) for s in seen]
     return Operator(op_id, name, tuple(stores), tuple(parts), meta)
 
 
-def _session_prefix(loc: Location, part0: str) -> int:
+def _session_prefix(loc: Location, part0: str, listing: dict[str, Entry]) -> int:
     """``numColsPrefixKey`` of an operator without operator metadata (written by engine 3.5), from
     its schema file: a session-window store (key ends with ``sessionStartTime: timestamp``, a value
     field carries the metadata ``spark.sessionWindow: true``; observed on 3.5.9 and 4.3.0) keys
@@ -195,7 +196,7 @@ def _session_prefix(loc: Location, part0: str) -> int:
     column). Anything else has no prefix key (0)."""
     from ..rows.schema import TimestampType, parse_state_schema_file
 
-    if "_metadata" not in loc.list_dir(part0) or "schema" not in loc.list_dir(f"{part0}/_metadata"):
+    if "_metadata" not in listing or "schema" not in loc.list_dir(f"{part0}/_metadata"):  # partition 0 is listed already
         return 0
     rel = f"{part0}/_metadata/schema"
     schemas = parse_state_schema_file(loc.read_bytes(rel), loc.describe(rel))
