@@ -43,3 +43,4 @@ engine-test-35: install-engine35
 
 clean:
 	rm -rf $(VENV) $(VENV35) .pytest_cache build *.egg-info
+	find migrate -name '*.so' -delete   # compiled helpers built in place by `pip install -e .`

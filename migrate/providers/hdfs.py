@@ -14,6 +14,12 @@ Reading is vectorised: one tight loop finds the record offsets of each file
 ``take`` (:func:`record_arrays`), and the replay (last write wins, removals drop the key) is one
 hash aggregation over all files of the chain (:func:`resolve_versions`). :func:`parse_records`
 stays the plain reference walk; every irregular file goes through it for its exact error.
+
+The record walk is the one step that cannot be vectorised (each offset depends on the lengths
+before it), and in Python it was the largest CPU cost of reading, so it is compiled:
+``_framing.c`` (module :mod:`._framing`, an optional extension built by ``setup.py``) walks the
+buffer in C. :func:`_record_starts_py` is the reference walk and the fallback when the extension
+is not built; tests hold the two to the same offsets and the same errors.
 """
 
 from __future__ import annotations
@@ -21,6 +27,7 @@ from __future__ import annotations
 import re
 import struct
 from collections.abc import Iterable, Iterator
+from typing import NoReturn
 
 import numpy as np
 import pyarrow as pa
@@ -38,6 +45,11 @@ from .base import (
     WriteContext,
     WrittenFile,
 )
+
+try:  # the compiled record walk (setup.py builds it when a C compiler is there)
+    from . import _framing
+except ImportError:  # not built: the Python walk
+    _framing = None
 
 _FILE = re.compile(r"^(\d+)(?:_([0-9A-Za-z-]+))?\.(delta|snapshot)$")
 _END = b"\xff\xff\xff\xff"
@@ -86,12 +98,24 @@ def record_starts(data: bytes, where: str, allow_removals: bool) -> np.ndarray:
     """Byte offset of every record of one decompressed file (int64), checked like ``parse_records``.
 
     Walking the records is sequential by nature (each position depends on the lengths before it),
-    so this is a tight loop that only reads the two lengths of each record; the keys and values
-    are then cut out by :func:`record_arrays` with whole-buffer operations. Anything irregular (a
-    negative length that is neither the end marker nor an allowed removal, a length running past
-    the end, a missing end marker, trailing bytes) sends the file through :func:`parse_records`,
-    which raises the exact error it always has.
+    so this walk only reads the two lengths of each record; the keys and values are then cut out
+    by :func:`record_arrays` with whole-buffer operations. The walk is the compiled one from
+    :mod:`._framing` when it is built, else :func:`_record_starts_py` (the reference). Anything
+    irregular (a negative length that is neither the end marker nor an allowed removal, a length
+    running past the end, a missing end marker, trailing bytes) sends the file through
+    :func:`parse_records`, which raises the exact error it always has. The array may be read-only.
     """
+    if _framing is None:
+        return _record_starts_py(data, where, allow_removals)
+    starts = _framing.record_starts(data, allow_removals)
+    if starts is None:
+        _explain_irregular(data, where, allow_removals, None)
+    return np.frombuffer(starts, dtype=np.int64)
+
+
+def _record_starts_py(data: bytes, where: str, allow_removals: bool) -> np.ndarray:
+    """:func:`record_starts` as a tight Python loop: the reference walk, and the fallback when the
+    compiled one is not built."""
     unpack = _BE_INT.unpack_from
     starts: list[int] = []
     add = starts.append
@@ -114,10 +138,16 @@ def record_starts(data: bytes, where: str, allow_removals: bool) -> np.ndarray:
     except (struct.error, _Irregular):
         klen = 0
     if klen != -1 or pos + 4 != len(data):
-        for _ in parse_records(data, where, allow_removals):
-            pass
-        raise CorruptInput(f"records cannot be walked (stopped at byte {pos})", where)  # never: parse_records raised
+        _explain_irregular(data, where, allow_removals, pos)
     return np.array(starts, dtype=np.int64)
+
+
+def _explain_irregular(data: bytes, where: str, allow_removals: bool, pos: int | None) -> NoReturn:
+    """Raise the exact error of an irregular file: :func:`parse_records` finds and names it."""
+    for _ in parse_records(data, where, allow_removals):
+        pass
+    stopped = "" if pos is None else f" (stopped at byte {pos})"
+    raise CorruptInput(f"records cannot be walked{stopped}", where)  # never: parse_records raised
 
 
 def _be_int32(buf: np.ndarray, at: np.ndarray) -> np.ndarray:
