@@ -9,6 +9,10 @@
 * ``tree_pss_mb``: the same peak over the proportional set sizes (``Pss`` in
   ``/proc/<pid>/smaps_rollup``: a page shared by n processes counts 1/n in each; a Linux kernel
   fact, see proc(5)), i.e. the memory the tree really occupies;
+* ``shm_mb``: the peak growth of the bytes used on ``/dev/shm`` during the run: scratch folders
+  the tool puts on that tmpfs (``migrate/scratch.py``) are memory no process's RSS or PSS shows;
+* ``tree_pss_shm_mb``: the peak of tree PSS plus that tmpfs growth, sampled together: what the
+  run really takes from the machine's memory;
 * ``load``: the 1-minute load average before and after (other work on the machine shows here).
 """
 
@@ -30,6 +34,8 @@ class Measured:
     max_rss_mb: float
     tree_rss_mb: float
     tree_pss_mb: float
+    shm_mb: float
+    tree_pss_shm_mb: float
     load_before: float
     load_after: float
     stdout: str
@@ -90,19 +96,31 @@ def tree_memory_kb(root: int) -> tuple[int, int]:
     return sum(_rss_kb(p) for p in pids), sum(_pss_kb(p) for p in pids)
 
 
+def shm_used_kb(path: str = "/dev/shm") -> int:
+    """KiB in use on the tmpfs at ``path`` (0 when there is none)."""
+    try:
+        st = os.statvfs(path)
+    except OSError:
+        return 0
+    return (st.f_blocks - st.f_bfree) * st.f_frsize // 1024
+
+
 def run(argv: list[str], env: dict[str, str] | None = None, cwd: str | None = None, interval: float = 0.02) -> Measured:
     out_path = f"/tmp/stateshift-bench-{os.getpid()}-{time.monotonic_ns()}"
     load_before = os.getloadavg()[0]
     with open(out_path + ".out", "wb") as out, open(out_path + ".err", "wb") as err:
         t0 = time.perf_counter()
         proc = subprocess.Popen(argv, stdout=out, stderr=err, env=env, cwd=cwd)
-        peak = [0, 0]  # tree RSS, tree PSS
+        peak = [0, 0, 0, 0]  # tree RSS, tree PSS, tmpfs growth, tree PSS + tmpfs growth
+        shm_base = shm_used_kb()
         done = threading.Event()
 
         def sample() -> None:
             while not done.is_set():
                 rss, pss = tree_memory_kb(proc.pid)
+                shm = max(0, shm_used_kb() - shm_base)
                 peak[0], peak[1] = max(peak[0], rss), max(peak[1], pss)
+                peak[2], peak[3] = max(peak[2], shm), max(peak[3], pss + shm)
                 done.wait(interval)
 
         sampler = threading.Thread(target=sample, daemon=True)
@@ -126,6 +144,8 @@ def run(argv: list[str], env: dict[str, str] | None = None, cwd: str | None = No
         max_rss_mb=usage.ru_maxrss / 1024,
         tree_rss_mb=peak[0] / 1024,
         tree_pss_mb=peak[1] / 1024,
+        shm_mb=peak[2] / 1024,
+        tree_pss_shm_mb=peak[3] / 1024,
         load_before=load_before,
         load_after=os.getloadavg()[0],
         stdout=stdout,

@@ -38,7 +38,6 @@ from __future__ import annotations
 import os
 import re
 import shutil
-import tempfile
 import time
 import uuid
 from collections.abc import Iterable, Iterator
@@ -46,6 +45,7 @@ from collections.abc import Iterable, Iterator
 import numpy as np
 import pyarrow as pa
 
+from .. import scratch
 from ..checkpoint.uids import checksum_name, render_checksum_file, verify_checksum_file
 from ..codecs import codec_of_stream
 from ..codecs.hadoop_crc import (
@@ -78,6 +78,7 @@ from .rocksdb_changelog import (
     replay_plan,
 )
 from .rocksdb_db import (  # noqa: F401  (FORMAT_VERSION_CONF and friends are part of this module's API)
+    ScratchFolder,
     BLOCK_SIZE_CONF,
     COMPRESSION_CONF,
     FORMAT_VERSION_CONF,
@@ -370,11 +371,16 @@ class RocksDBProvider(Provider):
         if zip_name is None and not changelogs:
             return
         where = store.describe(zip_name or changelogs[-1])
-        tmp = tempfile.mkdtemp(prefix="stateshift-rocksdb-r-")
+        zipped = self._metadata(store, zip_name, listing) if zip_name else None
+        # scratch holds the version's table files, plus what the changelogs replay into
+        # (a decompressed changelog is written twice: write-ahead log and flushed table)
+        need = sum(f.size for f in zipped[1].sst_files + zipped[1].log_files) if zipped else 0
+        need += sum(8 * listing[n].size for n in changelogs if n in listing)
+        tmp = scratch.make("stateshift-rocksdb-r-", need)
         try:
             db_dir = os.path.join(tmp, "db")
             os.mkdir(db_dir)
-            meta = self._restore(store, zip_name, listing, db_dir) if zip_name else None
+            meta = self._restore(store, zip_name, zipped, db_dir) if zip_name and zipped else None
             families = column_families(meta, store.describe(zip_name or "")) if meta else None
             codec = _codec_for_read(ctx, families, store, version)
             delimiter = merge_delimiter(ctx.conf, where)
@@ -397,10 +403,13 @@ class RocksDBProvider(Provider):
         finally:
             shutil.rmtree(tmp, ignore_errors=True)
 
-    def _restore(self, store: StoreDir, zip_name: str, listing: dict[str, Entry], db_dir: str) -> VersionMetadata:
-        """Extract a version zip and its shared files into ``db_dir``; return its metadata."""
+    def _restore(
+        self, store: StoreDir, zip_name: str, zipped: tuple[dict[str, bytes], VersionMetadata], db_dir: str
+    ) -> VersionMetadata:
+        """Extract a version zip (its members and metadata, from :meth:`_metadata`) and its shared
+        files into ``db_dir``; return its metadata."""
         where = store.describe(zip_name)
-        members, meta = self._metadata(store, zip_name, listing)
+        members, meta = zipped
         ssts = self._shared(store, SST_DIR, meta.sst_files, where)
         logs = self._shared(store, LOG_DIR, meta.log_files, where)
         for name, data in members.items():
@@ -487,10 +496,11 @@ class RocksDBProvider(Provider):
                 internal[0] += int(np.isin(family_ids(keys, where), internal_ids).sum())
 
         options = db_options(_engine_conf(ctx, families, where), where)
-        tmp = tempfile.mkdtemp(prefix="stateshift-rocksdb-w-")
+        folder = ScratchFolder("stateshift-rocksdb-w-")
         try:
             encode = lambda b: codec.to_rocksdb(b.column("key"), b.column("value"), where)
-            runs, rows = sorted_runs(batches, encode, options, tmp, self.run_bytes, where, count_internal)
+            runs, rows = sorted_runs(batches, encode, options, folder.path_for, self.run_bytes, where, count_internal)
+            tmp = folder.path_for(0, True)
             checkpoint = build_db(runs, rows, options, tmp, where)
             written: list[WrittenFile] = []
             sst_files = []
@@ -527,4 +537,4 @@ class RocksDBProvider(Provider):
                 written += self._write_checksum_file(store, zip_name, data, ctx.write_crc)
             return written
         finally:
-            shutil.rmtree(tmp, ignore_errors=True)
+            folder.remove()

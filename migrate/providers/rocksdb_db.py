@@ -16,11 +16,13 @@ the engine's delimiter into that line of the restored copy (the operator's ``del
 from __future__ import annotations
 
 import os
+import shutil
 from collections.abc import Callable, Iterable, Iterator
 
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from .. import scratch
 from ..errors import CorruptInput, Unsupported
 from .base import BATCH_ROWS
 
@@ -145,11 +147,33 @@ def iterate(db_dir: str, where: str) -> Iterator[tuple[pa.Array, pa.Array]]:
 Encoder = Callable[[pa.RecordBatch], tuple[pa.Array, pa.Array]]
 
 
+class ScratchFolder:
+    """The scratch folder of one partition build, created on first use where
+    :mod:`migrate.scratch` says for the bytes known by then, and removed by :meth:`remove`."""
+
+    def __init__(self, prefix: str) -> None:
+        self.prefix = prefix
+        self.path: str | None = None
+
+    def path_for(self, need: int, whole: bool) -> str:
+        """The folder (created now if needed) for ``need`` bytes; ``whole``: they are all the
+        partition will put there. A partition that needs several sorted runs has no known size
+        yet, so it is built in the system temporary directory, never on tmpfs."""
+        if self.path is None:
+            self.path = scratch.make(self.prefix, need if whole else None)
+        return self.path
+
+    def remove(self) -> None:
+        if self.path is not None:
+            shutil.rmtree(self.path, ignore_errors=True)
+
+
 def sorted_runs(
-    batches: Iterable[pa.RecordBatch], encode: Encoder, options, tmp: str, run_bytes: int, where: str,
-    on_keys: Callable[[pa.Array], None] = lambda keys: None,
+    batches: Iterable[pa.RecordBatch], encode: Encoder, options, folder: Callable[[int, bool], str], run_bytes: int,
+    where: str, on_keys: Callable[[pa.Array], None] = lambda keys: None,
 ) -> tuple[list[str], int]:
-    """Write the rows as sorted SST runs of about ``run_bytes`` each; return (paths, row count)."""
+    """Write the rows as sorted SST runs of about ``run_bytes`` each into ``folder(bytes, whole)``
+    (see :meth:`ScratchFolder.path_for`); return (paths, row count)."""
     runs: list[str] = []
     keys: list[pa.Array] = []
     values: list[pa.Array] = []
@@ -168,10 +192,12 @@ def sorted_runs(
         rows += batch.num_rows
         buffered += keys[-1].nbytes + values[-1].nbytes
         if buffered >= run_bytes:
-            runs.append(_write_run(keys, values, options, os.path.join(tmp, f"run-{len(runs)}.sst"), where))
+            path = os.path.join(folder(buffered, False), f"run-{len(runs)}.sst")
+            runs.append(_write_run(keys, values, options, path, where))
             keys, values, buffered = [], [], 0
     if keys:
-        runs.append(_write_run(keys, values, options, os.path.join(tmp, f"run-{len(runs)}.sst"), where))
+        path = os.path.join(folder(buffered, not runs), f"run-{len(runs)}.sst")
+        runs.append(_write_run(keys, values, options, path, where))
     return runs, rows
 
 

@@ -7,7 +7,6 @@ import io
 import json
 import os
 import shutil
-import tempfile
 import zipfile
 from pathlib import Path
 
@@ -30,7 +29,7 @@ def scratch(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
     """Route the reader's temporary folders into a folder the test can inspect."""
     folder = tmp_path / "scratch"
     folder.mkdir()
-    monkeypatch.setattr(tempfile, "tempdir", str(folder))
+    monkeypatch.setenv("STATESHIFT_SCRATCH", str(folder))  # migrate.scratch: the user's choice wins
     return folder
 
 

@@ -1,0 +1,135 @@
+"""Where scratch folders go: the user's choice first, tmpfs only with room to spare, disk otherwise;
+a RocksDB build that spans several sorted runs never goes to tmpfs; nothing is left behind."""
+
+import os
+import tempfile
+from pathlib import Path
+
+import pyarrow as pa
+import pytest
+
+from migrate import scratch
+from migrate.providers.base import ROW_SCHEMA, ReadContext, StoreDir, WriteContext
+from migrate.providers.rocksdb import RocksDBProvider
+from migrate.providers.rocksdb_db import ScratchFolder, db_options, sorted_runs
+from migrate.storage import open_location
+
+GIB = 1 << 30
+
+
+@pytest.fixture
+def clean_env(monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> Path:
+    """No user choice in the environment; ``tempfile``'s cached directory reset to a known one."""
+    monkeypatch.delenv(scratch.ENV, raising=False)
+    monkeypatch.delenv("TMPDIR", raising=False)
+    system_tmp = tmp_path / "system-tmp"
+    system_tmp.mkdir()
+    monkeypatch.setattr(tempfile, "tempdir", str(system_tmp))
+    return system_tmp
+
+
+def fake_machine(monkeypatch: pytest.MonkeyPatch, tmp_path: Path, *, fs: str, free: int, available: int) -> Path:
+    """A stand-in for /dev/shm with the given mount type, free space and available memory."""
+    shm = tmp_path / "shm"
+    shm.mkdir()
+    mounts = tmp_path / "mounts"
+    mounts.write_text(f"proc /proc proc rw 0 0\nshm {shm} {fs} rw,nosuid,nodev 0 0\n")
+    meminfo = tmp_path / "meminfo"
+    meminfo.write_text(f"MemTotal:       25000000 kB\nMemFree:        1000 kB\nMemAvailable:   {available // 1024} kB\n")
+    monkeypatch.setattr(scratch, "SHM", str(shm))
+    real_is_tmpfs, real_mem = scratch._is_tmpfs, scratch._mem_available
+    monkeypatch.setattr(scratch, "_is_tmpfs", lambda path, mounts_file=str(mounts): real_is_tmpfs(path, mounts_file))
+    monkeypatch.setattr(scratch, "_mem_available", lambda meminfo_file=str(meminfo): real_mem(meminfo_file))
+
+    class FakeStat:
+        f_bavail = free // 4096
+        f_frsize = 4096
+
+    real_statvfs = os.statvfs
+    monkeypatch.setattr(os, "statvfs", lambda p: FakeStat() if str(p) == str(shm) else real_statvfs(p))
+    return shm
+
+
+def test_the_users_directory_wins(clean_env, monkeypatch, tmp_path):
+    mine = tmp_path / "mine"
+    mine.mkdir()
+    monkeypatch.setenv(scratch.ENV, str(mine))
+    fake_machine(monkeypatch, tmp_path, fs="tmpfs", free=20 * GIB, available=20 * GIB)
+    assert scratch.directory(10) == str(mine)
+    folder = scratch.make("x-", 10)
+    assert Path(folder).parent == mine
+
+
+def test_tmpdir_set_by_the_user_is_kept(clean_env, monkeypatch, tmp_path):
+    monkeypatch.setenv("TMPDIR", str(clean_env))
+    fake_machine(monkeypatch, tmp_path, fs="tmpfs", free=20 * GIB, available=20 * GIB)
+    assert scratch.directory(10) == str(clean_env)
+
+
+def test_tmpfs_with_room_is_chosen(clean_env, monkeypatch, tmp_path):
+    shm = fake_machine(monkeypatch, tmp_path, fs="tmpfs", free=20 * GIB, available=20 * GIB)
+    assert scratch.directory(1 * GIB) == str(shm)
+
+
+@pytest.mark.parametrize(
+    "fs, free, available, need",
+    [
+        ("ext4", 20 * GIB, 20 * GIB, 10),  # not a tmpfs
+        ("tmpfs", 3 * GIB, 20 * GIB, 2 * GIB),  # the tmpfs would keep less than the reserve
+        ("tmpfs", 20 * GIB, 3 * GIB, 2 * GIB),  # the machine would keep less than the reserve
+        ("tmpfs", 20 * GIB, 20 * GIB, None),  # size unknown
+    ],
+)
+def test_disk_otherwise(clean_env, monkeypatch, tmp_path, fs, free, available, need):
+    fake_machine(monkeypatch, tmp_path, fs=fs, free=free, available=available)
+    assert scratch.directory(need) == str(clean_env)
+
+
+def test_unreadable_proc_files_mean_disk(clean_env, monkeypatch, tmp_path):
+    assert scratch._is_tmpfs("/anything", str(tmp_path / "no-mounts")) is False
+    assert scratch._mem_available(str(tmp_path / "no-meminfo")) == 0
+
+
+def batches(rows: int, width: int = 40, per_batch: int = 100):
+    for start in range(0, rows, per_batch):
+        keys = [b"k%09d" % i + b"\x00" * width for i in range(start, min(rows, start + per_batch))]
+        values = [b"v" * width for _ in keys]
+        yield pa.RecordBatch.from_arrays([pa.array(keys, pa.binary()), pa.array(values, pa.binary())], schema=ROW_SCHEMA)
+
+
+def test_a_build_of_several_runs_is_never_placed_by_size(tmp_path):
+    calls = []
+
+    def folder(need, whole):
+        calls.append((need, whole))
+        return str(tmp_path)
+
+    encode = lambda b: (b.column("key"), b.column("value"))
+    runs, rows = sorted_runs(batches(2000), encode, db_options({}, "x"), folder, 4096, "x")
+    assert rows == 2000 and len(runs) > 1
+    assert calls[0][1] is False  # the first run did not hold everything: size unknown
+    calls.clear()
+    runs, rows = sorted_runs(batches(10), encode, db_options({}, "x"), folder, 1 << 30, "x")
+    assert len(runs) == 1 and calls == [(calls[0][0], True)] and calls[0][0] > 0
+
+
+def test_scratch_folder_is_created_once_and_removed(clean_env):
+    f = ScratchFolder("stateshift-test-")
+    assert f.path is None
+    first = f.path_for(10, False)
+    assert f.path_for(10 * GIB, True) == first and os.path.isdir(first)
+    f.remove()
+    assert not os.path.exists(first)
+    ScratchFolder("unused-").remove()  # never created: nothing to do
+
+
+def test_rocksdb_write_and_read_leave_no_scratch_behind(monkeypatch, tmp_path):
+    mine = tmp_path / "scratch"
+    mine.mkdir()
+    monkeypatch.setenv(scratch.ENV, str(mine))
+    store = StoreDir(open_location(str(tmp_path / "target"), readonly=False), "state/0/0", 0, 0)
+    provider = RocksDBProvider()
+    provider.write(store, 3, batches(500), WriteContext())
+    assert os.listdir(mine) == []
+    assert sum(b.num_rows for b in provider.read(store, 3, ReadContext())) == 500
+    assert os.listdir(mine) == []
