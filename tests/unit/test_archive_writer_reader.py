@@ -229,3 +229,22 @@ def test_damaged_archives_are_refused_naming_the_file(tmp_path, damage, message)
     text = str(info.value)
     assert "\n" not in text
     assert str(tmp_path / "arch") in text and ("part-" in text or "metadata" in text or ".hidden" in text)
+
+
+def test_dictionaries_only_for_typed_text_and_statistics_only_for_typed_columns(loc):
+    """Raw rows are unique: no dictionary, no min/max; typed text columns get a dictionary;
+    every typed leaf column keeps its statistics for query engines (read back with pyarrow)."""
+    batch, _, _ = rows(200)
+    rel = data_file_rel(0, "default", 0)
+    write_data_file(loc, rel, [batch], decoder_for(SCHEMA_V1, "schema"), {})
+    meta = pq.ParquetFile(loc.path(rel)).metadata.row_group(0)
+    columns = {meta.column(i).path_in_schema: meta.column(i) for i in range(meta.num_columns)}
+    dictionary_encodings = {"PLAIN_DICTIONARY", "RLE_DICTIONARY"}
+    for raw in ("key", "value"):
+        assert not dictionary_encodings & set(columns[raw].encodings), raw
+        assert not columns[raw].is_stats_set, raw
+    assert dictionary_encodings & set(columns["key_bay"].encodings)
+    for number in ("key_rack", "value_sum_2"):
+        assert not dictionary_encodings & set(columns[number].encodings), number
+    for typed in ("key_bay", "key_rack", "value_sum", "value_sum_2", "value_seen"):
+        assert columns[typed].is_stats_set and columns[typed].statistics.has_min_max, typed
