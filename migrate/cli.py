@@ -115,6 +115,9 @@ def _run(args: argparse.Namespace) -> int:
         return int(args.run(args, ctx))
     finally:
         ctx.progress.close()
+        from .commands.common import stop_workers
+
+        stop_workers()  # a fork server started early, if an error came before the pool
 
 
 def main(argv: list[str] | None = None) -> int:

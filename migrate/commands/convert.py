@@ -58,6 +58,7 @@ from .common import (
     reverify_partition,
     run_partition,
     run_tasks,
+    start_workers_early,
     tasks_for,
 )
 
@@ -166,6 +167,8 @@ def convert(
 ) -> ConvertReport:
     guard_target(src, dst)
     ckpt = load_checkpoint(src)
+    if not dry_run:
+        start_workers_early(jobs, ckpt.store_partitions())
     if not force:
         refuse_if_running(ckpt)
     target_class = class_name_for(to)

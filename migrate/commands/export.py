@@ -58,7 +58,7 @@ from ..errors import UnsafeTarget, UsageError
 from ..providers import provider_for
 from ..providers.base import ReadContext, StoreDir
 from ..storage import Location
-from .common import add_jobs_argument, checked_jobs, guard_target, run_tasks
+from .common import add_jobs_argument, checked_jobs, guard_target, run_tasks, start_workers_early
 from .convert import refuse_if_running
 
 _LOG_FILE = re.compile(r"^(offsets|commits)/\.?(\d+)(\.crc)?$")
@@ -223,6 +223,7 @@ def export(
 ) -> ExportReport:
     guard_target(src, archive)
     full = load_checkpoint(src)
+    start_workers_early(jobs, full.store_partitions())
     if not force:
         refuse_if_running(full)
     ckpt = at_version(full, version)

@@ -64,6 +64,7 @@ from .common import (
     guard_target,
     read_back_digest,
     run_tasks,
+    start_workers_early,
 )
 from .convert import _write_with_crc, crc_rel, target_names
 
@@ -366,6 +367,8 @@ def import_archive(
     target_class = class_name_for(to)
     target = provider_for(target_class)
     manifest = load_manifest(archive)
+    if not dry_run:
+        start_workers_early(jobs, list(manifest.data_files))  # its imports overlap the archive check
     checked = check_archive(archive, manifest)
     files = _sort_files(manifest)
     conf = _check_logs(archive, manifest, files)

@@ -1,0 +1,79 @@
+"""The workers' fork server starts while the command still plans, only when the pool will be used,
+and never outlives the command: not after a finished run, not after an error before the pool."""
+
+from __future__ import annotations
+
+import shutil
+from multiprocessing import forkserver
+from pathlib import Path
+from types import SimpleNamespace
+
+import pytest
+
+from migrate.commands import common
+from migrate.storage import Entry
+
+from helpers import DEMO, stateshift
+
+
+def server_pid() -> int | None:
+    return forkserver._forkserver._forkserver_pid  # CPython's fork server (3.9+): its process id, None when stopped
+
+
+def units(count: int, size: int) -> list[SimpleNamespace]:
+    return [SimpleNamespace(listing={"1.delta": Entry(name="1.delta", size=size, is_dir=False)}) for _ in range(count)]
+
+
+@pytest.fixture(autouse=True)
+def no_server_left():
+    common.stop_workers()
+    yield
+    common.stop_workers()
+
+
+def test_the_rule_for_workers():
+    big = common.PARALLEL_MIN_BYTES
+    assert not common.uses_workers(1, units(100, big))  # one job
+    assert not common.uses_workers(2, units(1, big * 4))  # one task
+    assert not common.uses_workers(2, units(3, 10))  # small: few partitions, few bytes
+    assert common.uses_workers(2, units(common.PARALLEL_MIN_TASKS, 10))  # enough partitions
+    assert common.uses_workers(2, units(2, big))  # enough bytes
+    assert common.uses_workers(2, [object(), object()])  # size unknown: assume it is worth it
+    manifest_files = [SimpleNamespace(bytes=big // 2), SimpleNamespace(bytes=big // 2)]  # archive data file entries
+    assert common.uses_workers(2, manifest_files) and not common.uses_workers(2, manifest_files[:1] * 1)
+
+
+def test_early_start_launches_the_server_only_when_the_pool_will_be_used():
+    common.start_workers_early(2, units(3, 10))
+    assert server_pid() is None
+    common.start_workers_early(2, units(common.PARALLEL_MIN_TASKS, 10))
+    assert server_pid() is not None
+    common.stop_workers()
+    assert server_pid() is None
+
+
+def test_an_error_before_the_pool_stops_the_early_server(tmp_path: Path, monkeypatch: pytest.MonkeyPatch):
+    monkeypatch.setattr(common, "PARALLEL_MIN_TASKS", 1)  # the two-partition demo now counts as large
+    started = []
+    real = common.start_workers_early
+    monkeypatch.setattr(
+        "migrate.commands.convert.start_workers_early",
+        lambda jobs, parts: (real(jobs, parts), started.append(server_pid())),
+    )
+    target = tmp_path / "not-empty"
+    target.mkdir()
+    (target / "keep.txt").write_text("someone's file")
+    r = stateshift("convert", str(DEMO / "greenhouse_totals_hdfs"), str(target), "--to", "rocksdb", "--jobs", "2", "--force")
+    assert r.returncode == 6, r.stderr  # refused: target not empty, after the early start
+    assert started and started[0] is not None  # the server had been started
+    assert server_pid() is None  # and the command stopped it
+    assert (target / "keep.txt").read_text() == "someone's file"
+
+
+def test_a_finished_run_leaves_no_server(tmp_path: Path, monkeypatch: pytest.MonkeyPatch):
+    monkeypatch.setattr(common, "PARALLEL_MIN_TASKS", 1)
+    src = tmp_path / "src"
+    shutil.copytree(DEMO / "greenhouse_totals_hdfs", src)
+    r = stateshift("convert", str(src), str(tmp_path / "dst"), "--to", "rocksdb", "--jobs", "2", "--force")
+    assert r.returncode == 0, r.stderr
+    assert server_pid() is None
