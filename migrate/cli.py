@@ -112,6 +112,9 @@ class RunContext:
 def _run(args: argparse.Namespace) -> int:
     ctx = RunContext(args)
     try:
+        from .scratch import check_choice
+
+        check_choice()  # a bad STATESHIFT_SCRATCH stops the command before it writes anything
         return int(args.run(args, ctx))
     finally:
         ctx.progress.close()

@@ -9,7 +9,8 @@ on a tmpfs a sync returns at once (the same run: 1.9 of 2 cores, 28.1 s). So scr
 ``/dev/shm`` when that is a tmpfs with room to spare, and the caller says how many bytes it
 will put there. Order of choice:
 
-1. ``STATESHIFT_SCRATCH=DIR``: the user's choice, used as given (the directory must exist);
+1. ``STATESHIFT_SCRATCH=DIR``: the user's choice, used as given (an existing directory, else a
+   usage error);
 2. ``TMPDIR`` when set: the user's choice for temporary files (``tempfile``'s rule);
 3. ``/dev/shm`` when it is a tmpfs and, after ``need`` more bytes, both its free space and the
    machine's available memory (``MemAvailable``, proc(5)) stay above :data:`RESERVE`;
@@ -25,6 +26,8 @@ from __future__ import annotations
 import os
 import tempfile
 
+from .errors import UsageError
+
 SHM = "/dev/shm"
 #: memory and tmpfs space left untouched when choosing tmpfs for scratch
 RESERVE = 2 << 30
@@ -32,15 +35,18 @@ ENV = "STATESHIFT_SCRATCH"
 
 
 def _is_tmpfs(path: str, mounts: str = "/proc/mounts") -> bool:
+    """Whether ``path`` is a mount point of a tmpfs (the last mount listed there is the one in
+    effect: mounts stack)."""
+    kind = None
     try:
         with open(mounts) as f:
             for line in f:
                 fields = line.split()
                 if len(fields) >= 3 and fields[1] == path:
-                    return fields[2] == "tmpfs"
+                    kind = fields[2]
     except OSError:
         return False
-    return False
+    return kind == "tmpfs"
 
 
 def _mem_available(meminfo: str = "/proc/meminfo") -> int:
@@ -67,11 +73,19 @@ def _tmpfs_has_room(need: int) -> bool:
     return free - need >= RESERVE and _mem_available() - need >= RESERVE
 
 
+def check_choice() -> None:
+    """Refuse a ``STATESHIFT_SCRATCH`` that is not an existing directory before anything is written."""
+    chosen = os.environ.get(ENV)
+    if chosen and not os.path.isdir(chosen):
+        raise UsageError(f"{ENV}={chosen} is not an existing directory")
+
+
 def directory(need: int | None) -> str:
     """The directory to create a scratch folder in for about ``need`` bytes (see the module doc);
     ``None``: the size is not known, so never tmpfs."""
     chosen = os.environ.get(ENV)
     if chosen:
+        check_choice()
         return chosen
     if os.environ.get("TMPDIR"):
         return tempfile.gettempdir()

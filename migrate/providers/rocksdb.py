@@ -78,10 +78,10 @@ from .rocksdb_changelog import (
     replay_plan,
 )
 from .rocksdb_db import (  # noqa: F401  (FORMAT_VERSION_CONF and friends are part of this module's API)
-    ScratchFolder,
     BLOCK_SIZE_CONF,
     COMPRESSION_CONF,
     FORMAT_VERSION_CONF,
+    ScratchFolder,
     build_db,
     db_options,
     iterate,

@@ -77,3 +77,4 @@ def test_a_finished_run_leaves_no_server(tmp_path: Path, monkeypatch: pytest.Mon
     r = stateshift("convert", str(src), str(tmp_path / "dst"), "--to", "rocksdb", "--jobs", "2", "--force")
     assert r.returncode == 0, r.stderr
     assert server_pid() is None
+

@@ -133,3 +133,19 @@ def test_rocksdb_write_and_read_leave_no_scratch_behind(monkeypatch, tmp_path):
     assert os.listdir(mine) == []
     assert sum(b.num_rows for b in provider.read(store, 3, ReadContext())) == 500
     assert os.listdir(mine) == []
+
+
+def test_a_missing_directory_of_the_users_is_a_usage_error(clean_env, monkeypatch, tmp_path):
+    from migrate.errors import UsageError
+
+    monkeypatch.setenv(scratch.ENV, str(tmp_path / "no-such-folder"))
+    with pytest.raises(UsageError, match="STATESHIFT_SCRATCH=.*no-such-folder is not an existing directory"):
+        scratch.directory(10)
+
+
+def test_the_last_mount_of_a_path_is_the_one_in_effect(tmp_path):
+    mounts = tmp_path / "mounts"
+    mounts.write_text("tmpfs /dev/shm tmpfs rw 0 0\n/dev/vdb /dev/shm ext4 rw 0 0\n")
+    assert scratch._is_tmpfs("/dev/shm", str(mounts)) is False
+    mounts.write_text("/dev/vdb /dev/shm ext4 rw 0 0\ntmpfs /dev/shm tmpfs rw 0 0\n")
+    assert scratch._is_tmpfs("/dev/shm", str(mounts)) is True
