@@ -336,20 +336,16 @@ def run_tasks(
                 on_done(r)
                 results.append(r)
     finally:
-        _stop_fork_server()
+        stop_workers()
     return results
 
 
 def stop_workers() -> None:
-    """Stop a fork server this process started (a no-op when none runs); the CLI calls it on every
-    way out, so one started early is never left behind by an error before the pool."""
-    _stop_fork_server()
-
-
-def _stop_fork_server() -> None:
-    """Stop the fork server and wait for it, so its workers' CPU time and memory are accounted to
-    this process like spawned children's (``wait4``/``RUSAGE_CHILDREN``, which the benchmarks
-    read); the next ``run_tasks`` starts a new one."""
+    """Stop the fork server this process started, if any, and wait for it, so its workers' CPU time
+    and memory are accounted to this process like spawned children's (``wait4``/``RUSAGE_CHILDREN``,
+    which the benchmarks read); the next ``run_tasks`` starts a new one. ``run_tasks`` calls it after
+    its pool, the CLI on every way out (so a server started early is never left behind by an error
+    before the pool)."""
     from multiprocessing import forkserver
 
     stop = getattr(getattr(forkserver, "_forkserver", None), "_stop", None)  # CPython >= 3.9
