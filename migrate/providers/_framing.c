@@ -1,4 +1,4 @@
-/* migrate.providers._framing: the record walk of heap-map state files, compiled.
+/* migrate.providers._framing: the record walk and gather of heap-map state files, compiled.
  *
  * A decompressed heap-map file is a run of records
  *
@@ -16,6 +16,16 @@
  *     numpy.frombuffer(..., dtype=numpy.int64)), or None when the records are irregular in any
  *     way; the caller then runs the reference parser, which raises the exact error. This module
  *     never describes what is wrong.
+ *
+ * gather_records(data, starts, large) -> (key_offsets, keys, value_offsets, values, removed)
+ *     starts: the int64 offsets record_starts returned for the same data (any buffer of int64).
+ *     Copies every key, and every value, into one contiguous buffer each, with the offsets of an
+ *     Arrow binary array (int32; int64 when ``large``, for large_binary) and one byte per record
+ *     that is 1 for a removal (whose value is empty). This is the gather that
+ *     migrate/providers/hdfs.py:_record_arrays_py does with two Arrow ``take`` calls over the
+ *     buffer viewed as alternating header / key / header / value elements; that stays the
+ *     reference and the fallback. Raises ValueError when a start does not hold a record within
+ *     the data (starts that did not come from record_starts); it never returns a partial result.
  *
  * Bounds: every length is checked against the bytes that remain before it is used, in 64-bit
  * arithmetic (int64_t), so neither a huge length nor a buffer of 2 GiB or more can overflow or make
@@ -147,15 +157,156 @@ record_starts(PyObject *module, PyObject *args)
     return result;
 }
 
+/* The i-th int64 of a buffer that may not be 8-byte aligned. */
+static inline int64_t
+start_at(const unsigned char *starts, int64_t i)
+{
+    int64_t v;
+    memcpy(&v, starts + 8 * i, 8);
+    return v;
+}
+
+/* Sizes of the keys and values at the given starts: 0, or -1 when a start does not hold a record
+ * within n bytes. Needs no GIL. */
+static int
+measure(const unsigned char *buf, int64_t n, const unsigned char *starts, int64_t count, int64_t *key_bytes, int64_t *value_bytes)
+{
+    int64_t kb = 0, vb = 0;
+    for (int64_t i = 0; i < count; i++) {
+        int64_t pos = start_at(starts, i);
+        if (pos < 0 || n - pos < 4)
+            return -1;
+        int64_t klen = be_int32(buf + pos);
+        if (klen < 0 || n - pos - 4 < klen + 4)
+            return -1;
+        int64_t vpos = pos + 4 + klen;
+        int64_t vlen = be_int32(buf + vpos);
+        if (vlen == -1)
+            vlen = 0;                             /* a removal: empty value */
+        else if (vlen < 0 || n - vpos - 4 < vlen)
+            return -1;
+        kb += klen;                               /* each sum <= n: no overflow */
+        vb += vlen;
+    }
+    *key_bytes = kb;
+    *value_bytes = vb;
+    return 0;
+}
+
+/* Fill the buffers sized by measure() (which accepted these starts). Needs no GIL. */
+static void
+fill(const unsigned char *buf, const unsigned char *starts, int64_t count, int large,
+     char *koff, char *kout, char *voff, char *vout, char *removed)
+{
+    int64_t kat = 0, vat = 0;
+    for (int64_t i = 0; i <= count; i++) {
+        if (large) {
+            memcpy(koff + 8 * i, &kat, 8);
+            memcpy(voff + 8 * i, &vat, 8);
+        }
+        else {
+            int32_t k32 = (int32_t)kat, v32 = (int32_t)vat;  /* < 2**31: checked by the caller */
+            memcpy(koff + 4 * i, &k32, 4);
+            memcpy(voff + 4 * i, &v32, 4);
+        }
+        if (i == count)
+            break;
+        int64_t pos = start_at(starts, i);
+        int64_t klen = be_int32(buf + pos);
+        int64_t vpos = pos + 4 + klen;
+        int64_t vlen = be_int32(buf + vpos);
+        memcpy(kout + kat, buf + pos + 4, (size_t)klen);
+        kat += klen;
+        removed[i] = vlen == -1;
+        if (vlen > 0) {
+            memcpy(vout + vat, buf + vpos + 4, (size_t)vlen);
+            vat += vlen;
+        }
+    }
+}
+
+PyDoc_STRVAR(gather_records_doc,
+"gather_records(data, starts, large, /) -> (key_offsets, keys, value_offsets, values, removed)\n"
+"\n"
+"The keys and the values at the record starts (from record_starts) of one decompressed heap-map\n"
+"file, each as the offsets (int32, or int64 when large) and data buffers of an Arrow binary\n"
+"array, plus one byte per record, 1 for a removal (its value is empty).");
+
+static PyObject *
+gather_records(PyObject *module, PyObject *args)
+{
+    PyObject *data, *starts_obj;
+    int large;
+    Py_buffer view, sview;
+    int64_t key_bytes = 0, value_bytes = 0;
+    int outcome;
+    PyObject *koff = NULL, *kout = NULL, *voff = NULL, *vout = NULL, *removed = NULL, *result = NULL;
+
+    (void)module;
+    if (!PyArg_ParseTuple(args, "OOp:gather_records", &data, &starts_obj, &large))
+        return NULL;
+    if (PyObject_GetBuffer(data, &view, PyBUF_SIMPLE) < 0)
+        return NULL;
+    if (PyObject_GetBuffer(starts_obj, &sview, PyBUF_SIMPLE) < 0) {
+        PyBuffer_Release(&view);
+        return NULL;
+    }
+    if (sview.len % (Py_ssize_t)sizeof(int64_t) != 0) {
+        PyErr_SetString(PyExc_ValueError, "starts must be a buffer of int64");
+        goto done;
+    }
+    int64_t count = (int64_t)(sview.len / (Py_ssize_t)sizeof(int64_t));
+    const unsigned char *buf = (const unsigned char *)view.buf;
+    const unsigned char *starts = (const unsigned char *)sview.buf;  /* contiguous (PyBUF_SIMPLE) */
+    Py_BEGIN_ALLOW_THREADS
+    outcome = measure(buf, (int64_t)view.len, starts, count, &key_bytes, &value_bytes);
+    Py_END_ALLOW_THREADS
+    if (outcome != 0) {
+        PyErr_SetString(PyExc_ValueError, "a start does not hold a record within the data");
+        goto done;
+    }
+    if (!large && (key_bytes > INT32_MAX || value_bytes > INT32_MAX)) {
+        PyErr_SetString(PyExc_ValueError, "the keys or values need 64-bit offsets (large)");
+        goto done;
+    }
+    Py_ssize_t width = large ? 8 : 4;
+    /* count + 1 <= view.len / 8 + 1, so the offset sizes fit in Py_ssize_t */
+    koff = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(count + 1) * width);
+    voff = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(count + 1) * width);
+    kout = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)key_bytes);
+    vout = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)value_bytes);
+    removed = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)count);
+    if (!koff || !voff || !kout || !vout || !removed)
+        goto done;
+    {
+        char *ko = PyBytes_AS_STRING(koff), *ki = PyBytes_AS_STRING(kout);
+        char *vo = PyBytes_AS_STRING(voff), *vi = PyBytes_AS_STRING(vout), *rm = PyBytes_AS_STRING(removed);
+        Py_BEGIN_ALLOW_THREADS
+        fill(buf, starts, count, large, ko, ki, vo, vi, rm);
+        Py_END_ALLOW_THREADS
+    }
+    result = PyTuple_Pack(5, koff, kout, voff, vout, removed);
+done:
+    Py_XDECREF(koff);
+    Py_XDECREF(kout);
+    Py_XDECREF(voff);
+    Py_XDECREF(vout);
+    Py_XDECREF(removed);
+    PyBuffer_Release(&sview);
+    PyBuffer_Release(&view);
+    return result;
+}
+
 static PyMethodDef framing_methods[] = {
     {"record_starts", record_starts, METH_VARARGS, record_starts_doc},
+    {"gather_records", gather_records, METH_VARARGS, gather_records_doc},
     {NULL, NULL, 0, NULL},
 };
 
 static struct PyModuleDef framing_module = {
     PyModuleDef_HEAD_INIT,
     "migrate.providers._framing",
-    "The record walk of heap-map state files, compiled (see migrate.providers.hdfs).",
+    "The record walk and gather of heap-map state files, compiled (see migrate.providers.hdfs).",
     0,
     framing_methods,
     NULL,

@@ -1,8 +1,10 @@
-"""The compiled record walk (``migrate.providers._framing``) agrees with the Python reference walk.
+"""The compiled record walk and gather (``migrate.providers._framing``) agree with the Python
+reference walk and gather.
 
 Both walks must give the same record offsets for every well-formed file and both must call every
 other input irregular, so that ``record_starts`` returns the same offsets, or raises the same
-error, whichever walk runs. Inputs: the engine-written heap-map files under ``tests/fixtures``,
+error, whichever walk runs; on every well-formed file both gathers must give the same keys,
+values and removal flags, so that ``record_arrays`` returns the same arrays either way. Inputs: the engine-written heap-map files under ``tests/fixtures``,
 files generated from random keys and values (whose offsets are known from their construction),
 arbitrary bytes from hypothesis, seeded mutations and truncations of valid files, and a buffer
 larger than 2 GiB (mapped, not filled, so it costs no memory).
@@ -33,7 +35,7 @@ from hypothesis import strategies as st
 from migrate.codecs import codec_of_stream
 from migrate.errors import CorruptInput
 from migrate.providers import hdfs
-from migrate.providers.hdfs import _record_starts_py, parse_records, record_starts
+from migrate.providers.hdfs import _record_arrays_py, _record_starts_py, parse_records, record_arrays, record_starts
 
 FIXTURES = Path(__file__).resolve().parents[1] / "fixtures"
 FIXTURE_FILES = sorted(p for p in FIXTURES.rglob("*") if p.suffix in (".delta", ".snapshot"))
@@ -90,9 +92,27 @@ def error_of(data, allow_removals: bool) -> str | None:
     return None
 
 
+def assert_gathers_agree(framing: ModuleType, data, starts: np.ndarray) -> None:
+    """The compiled gather gives the reference gather's keys, values and removal flags, with
+    32-bit and with 64-bit offsets, and record_arrays returns them."""
+    for large in (False, True):
+        keys, values, removed = _record_arrays_py(data, starts, large)
+        koff, kdata, voff, vdata, flags = framing.gather_records(data, starts, large)
+        width = np.int64 if large else np.int32
+        assert [kdata[a:b] for a, b in zip(np.frombuffer(koff, width)[:-1], np.frombuffer(koff, width)[1:])] == keys.to_pylist()
+        assert [vdata[a:b] for a, b in zip(np.frombuffer(voff, width)[:-1], np.frombuffer(voff, width)[1:])] == values.to_pylist()
+        assert np.frombuffer(flags, np.bool_).tolist() == removed.tolist()
+        assert len(koff) == len(voff) == (len(starts) + 1) * np.dtype(width).itemsize
+        assert np.frombuffer(koff, width)[0] == 0 and np.frombuffer(koff, width)[-1] == len(kdata)
+    k, v, r = record_arrays(data, "f", True)
+    keys, values, removed = _record_arrays_py(data, starts, False)
+    assert k.equals(keys) and v.equals(values) and r.tolist() == removed.tolist()
+
+
 def assert_agree(framing: ModuleType, data, allow_removals: bool, monkeypatch: pytest.MonkeyPatch) -> np.ndarray | None:
     """Both walks give the same offsets or both call the input irregular, and record_starts then
-    raises the same error with the extension as without it. Returns the offsets (None: irregular)."""
+    raises the same error with the extension as without it; where the walks accept, both gathers
+    agree (:func:`assert_gathers_agree`). Returns the offsets (None: irregular)."""
     expected = python_starts(data, allow_removals)
     got = compiled_starts(framing, data, allow_removals)
     if expected is None:
@@ -106,6 +126,7 @@ def assert_agree(framing: ModuleType, data, allow_removals: bool, monkeypatch: p
     assert got is not None, "compiled walk refused what the Python walk accepts"
     assert got.dtype == np.int64 and np.array_equal(got, expected)
     assert np.array_equal(record_starts(data, "f", allow_removals), expected)
+    assert_gathers_agree(framing, data, expected)
     return expected
 
 
@@ -245,6 +266,25 @@ def test_argument_errors_are_python_errors(framing: ModuleType) -> None:
         framing.record_starts(END)
     with pytest.raises(BufferError):
         framing.record_starts(memoryview(END + END)[::2], True)  # not contiguous
+    with pytest.raises(TypeError):
+        framing.gather_records(END, "not a buffer", False)
+    with pytest.raises(BufferError):
+        framing.gather_records(memoryview(END + END)[::2], b"", False)
+
+
+def test_gather_refuses_starts_that_hold_no_record(framing: ModuleType) -> None:
+    """Starts that did not come from the walk are refused whole (ValueError, nothing returned),
+    never read past the end of the data."""
+    data, expected = build([(b"ab", b"xyz"), (b"c", None)])
+    assert framing.gather_records(data, np.array(expected, np.int64), False)[1] == b"abc"
+    for bad in ([len(data) - 4], [len(data)], [-1], [1], [0, 10**12]):
+        with pytest.raises(ValueError, match="does not hold a record"):
+            framing.gather_records(data, np.array(bad, np.int64), False)
+    with pytest.raises(ValueError, match="int64"):
+        framing.gather_records(data, b"\x00" * 7, False)
+    # an unaligned buffer of starts is read correctly
+    raw = b"\x00" + np.array(expected, np.int64).tobytes()
+    assert framing.gather_records(data, memoryview(raw)[1:], False)[1] == b"abc"
 
 
 # --- (c) arbitrary bytes and mutations of valid files -------------------------------------------
@@ -348,10 +388,14 @@ def test_offsets_past_2_gib(framing: ModuleType, monkeypatch: pytest.MonkeyPatch
 
 
 def test_python_walk_runs_when_the_extension_is_missing(monkeypatch: pytest.MonkeyPatch) -> None:
-    """Without the extension record_starts is the Python walk (offsets and errors); needs no build."""
+    """Without the extension record_starts and record_arrays are the Python walk and gather
+    (offsets, arrays and errors); needs no build."""
     data, expected = build([(b"a", b"1"), (b"", None), (b"ccc", b"")])
     monkeypatch.setattr(hdfs, "_framing", None)
     assert record_starts(data, "f", True).tolist() == expected
+    keys, values, removed = record_arrays(data, "f", True)
+    assert keys.to_pylist() == [b"a", b"", b"ccc"] and values.to_pylist() == [b"1", b"", b""]
+    assert removed.tolist() == [False, True, False]
     with pytest.raises(CorruptInput, match=r"^x/1\.delta: 1 unexpected bytes after the end marker$"):
         record_starts(data + b"\x00", "x/1.delta", True)
 
