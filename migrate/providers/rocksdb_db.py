@@ -114,8 +114,13 @@ def iterate(db_dir: str, where: str) -> Iterator[tuple[pa.Array, pa.Array]]:
     """
     from rocksdict import AccessType, Options, Rdict, ReadOptions
 
+    options = Options(raw_mode=True)
+    # RocksDB opens the table files of a DB with this many threads, started at every open even for
+    # one file (default 16; measured: 2.7 -> 1.4 CPU ms per open and scan of a one-file DB). A
+    # read-only open writes no OPTIONS file, so nothing we write records this setting.
+    options.set_max_file_opening_threads(1)
     try:
-        db = Rdict(db_dir, options=Options(raw_mode=True), access_type=AccessType.read_only())
+        db = Rdict(db_dir, options=options, access_type=AccessType.read_only())
     except Exception as exc:
         raise CorruptInput(f"RocksDB refuses to open this version: {exc}", where) from exc
     try:
