@@ -12,7 +12,7 @@ S+1..V applied in order. A missing delta in that chain is an error, never a part
 Reading is vectorised: one tight loop finds the record offsets of each file
 (:func:`record_starts`), keys and values are gathered out of the decompressed buffer into one
 buffer each (:func:`record_arrays`), and the replay (last write wins, removals drop the key) is one
-hash aggregation over all files of the chain (:func:`resolve_versions`). :func:`parse_records`
+dictionary encoding over all files of the chain (:func:`resolve_versions`). :func:`parse_records`
 stays the plain reference walk; every irregular file goes through it for its exact error.
 
 The record walk is the one step that cannot be vectorised (each offset depends on the lengths
@@ -32,6 +32,7 @@ from typing import NoReturn
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from ..codecs import codec_for, codec_of_stream
 from ..codecs.hadoop_crc import crc_name, make_crc, verify_crc
@@ -205,7 +206,13 @@ def resolve_versions(files: list[tuple[pa.Array, pa.Array, np.ndarray]]) -> tupl
     """The map after applying the files' records in order: the last write of each key wins and a
     removal drops the key (the engine's replay of a snapshot and its deltas).
 
-    Done with one hash aggregation (newest record per key) and two gathers.
+    The records are numbered newest first and dictionary-encoded: a key's id is the order of its
+    first appearance there, so the record where the running maximum of the ids grows is the
+    newest write of a new key. Those records, minus removals, are gathered in file order (a
+    deterministic output). One hash pass (Arrow's dictionary encoding) and whole-array numpy;
+    measured against the hash aggregation it replaces (``Table.group_by``) on one 10M-key
+    benchmark partition, each in a fresh process: the same CPU time (86-104 vs 97-106 ms) and
+    18 MB less peak memory; and no ``pyarrow.acero``, whose import brings ``pyarrow.dataset``.
     """
     if not files:
         return pa.array([], pa.binary()), pa.array([], pa.binary())
@@ -214,16 +221,15 @@ def resolve_versions(files: list[tuple[pa.Array, pa.Array, np.ndarray]]) -> tupl
     values = pa.chunked_array([f[1].cast(key_type) for f in files], key_type)
     removed = np.concatenate([f[2] for f in files])
     total = len(removed)
-    groups = (
-        pa.table({"key": keys, "seq": pa.array(np.arange(total, dtype=np.int64))})
-        .group_by("key", use_threads=False)
-        .aggregate([("seq", "max")])
-    )
-    if groups.num_rows == total and not removed.any():  # nothing overwritten, nothing removed
+    newest_first = keys.take(pa.array(np.arange(total - 1, -1, -1, dtype=np.int64))).combine_chunks()
+    encoded = pc.dictionary_encode(newest_first)  # one array, one memo table: ids 0, 1, 2... by first appearance
+    if len(encoded.dictionary) == total and not removed.any():  # nothing overwritten, nothing removed
         return keys.combine_chunks(), values.combine_chunks()
-    last = groups.column("seq_max").to_numpy()
-    last = last[~removed[last]]
-    order = pa.array(np.sort(last))  # file order of the surviving records (deterministic output)
+    ids = encoded.indices.to_numpy()
+    del newest_first, encoded
+    newest = np.flatnonzero(np.diff(np.maximum.accumulate(ids), prepend=-1) > 0)  # first appearances
+    last = (total - 1) - newest  # as positions in file order
+    order = pa.array(np.sort(last[~removed[last]]))
     return keys.take(order).combine_chunks(), values.take(order).combine_chunks()
 
 
