@@ -29,6 +29,7 @@ import os
 import platform
 import re
 import shutil
+import subprocess
 import sys
 import tempfile
 from dataclasses import dataclass
@@ -173,39 +174,41 @@ def run_floor(sources: dict[int, list[tuple[str, int]]], written: dict[int, list
     return m
 
 
-def _tool(args: list[str], jobs: int, tool_path: str | None) -> measure.Measured:
+def _tool(args: list[str], jobs: int, tool_path: str | None, tool_python: str | None = None) -> measure.Measured:
     # the child's working directory comes first on its path, so it must hold the package to run
-    m = measure.run(_python() + ["-m", "migrate"] + args + ["--jobs", str(jobs), "--json"], env=_env(tool_path),
+    m = measure.run([tool_python or sys.executable, "-m", "migrate"] + args + ["--jobs", str(jobs), "--json"], env=_env(tool_path),
                     cwd=tool_path or str(HERE.parent))
     if m.returncode != 0:
         raise SystemExit(f"{' '.join(args)} failed ({m.returncode}):\n{m.stderr[-3000:]}")
     return m
 
 
-def run_case(case: str, p: Params, jobs: int, scratch: Path, with_floor: bool, tool_path: str | None = None) -> CaseResult:
+def run_case(
+    case: str, p: Params, jobs: int, scratch: Path, with_floor: bool, tool_path: str | None = None, tool_python: str | None = None
+) -> CaseResult:
     hdfs = Params(p.keys, p.partitions, p.shape, "hdfs", p.deltas, p.seed)
     rocks = Params(p.keys, p.partitions, p.shape, "rocksdb", p.deltas, p.seed)
     target = scratch / case
     shutil.rmtree(target, ignore_errors=True)
     if case == "convert-h2r":
         src, info = ensure_checkpoint(hdfs, jobs)
-        m = _tool(["convert", str(src), str(target), "--to", "rocksdb"], jobs, tool_path)
+        m = _tool(["convert", str(src), str(target), "--to", "rocksdb"], jobs, tool_path, tool_python)
         sources = source_files(src)
     elif case == "convert-r2h":
         src, info = ensure_checkpoint(rocks, jobs)
-        m = _tool(["convert", str(src), str(target), "--to", "hdfs"], jobs, tool_path)
+        m = _tool(["convert", str(src), str(target), "--to", "hdfs"], jobs, tool_path, tool_python)
         sources = source_files(src)
     elif case == "export":
         src, info = ensure_checkpoint(hdfs, jobs)
-        m = _tool(["export", str(src), str(target)], jobs, tool_path)
+        m = _tool(["export", str(src), str(target)], jobs, tool_path, tool_python)
         sources = source_files(src)
     elif case == "import":
         src, info = ensure_checkpoint(hdfs, jobs)
         archive = scratch / "archive-for-import"
         if not (archive / "manifest.json").exists():
             shutil.rmtree(archive, ignore_errors=True)
-            _tool(["export", str(src), str(archive)], jobs, tool_path)
-        m = _tool(["import", str(archive), str(target), "--to", "rocksdb"], jobs, tool_path)
+            _tool(["export", str(src), str(archive)], jobs, tool_path, tool_python)
+        m = _tool(["import", str(archive), str(target), "--to", "rocksdb"], jobs, tool_path, tool_python)
         sources = archive_files(archive)
     else:
         raise SystemExit(f"unknown case {case}")
@@ -294,7 +297,18 @@ def targets(results: list[CaseResult]) -> list[str]:
     return out
 
 
-def write_results(results: list[CaseResult], jobs: int, argv: list[str], name: str | None = None) -> Path:
+def tool_environment(tool_python: str | None) -> str:
+    """The tool's interpreter, and whether pandas is importable there: pyarrow imports it, when
+    installed, on the first ``pa.array`` of a list or numpy array, which costs every process of
+    the tool about 0.35 CPU s and 35-53 MB (measured); the tool itself never uses pandas."""
+    python = tool_python or sys.executable
+    probe = subprocess.run([python, "-c", "import importlib.util as u; print(u.find_spec('pandas') is not None)"],
+                           capture_output=True, text=True)
+    pandas = {"True": "pandas installed", "False": "no pandas"}.get(probe.stdout.strip(), "pandas unknown")
+    return f"tool interpreter {python} ({pandas})"
+
+
+def write_results(results: list[CaseResult], jobs: int, argv: list[str], name: str | None = None, environment: str = "") -> Path:
     RESULTS.mkdir(parents=True, exist_ok=True)
     now = dt.datetime.now()
     path = RESULTS / f"{name or f'{now:%Y-%m-%d}'}.md"
@@ -302,7 +316,7 @@ def write_results(results: list[CaseResult], jobs: int, argv: list[str], name: s
         f"## {now:%Y-%m-%d %H:%M} `python -m benchmarks.run {' '.join(argv)}`",
         "",
         f"Machine: {os.cpu_count()} cores, {platform.python_implementation()} {platform.python_version()}, "
-        f"jobs {jobs}; load average before/after each case: "
+        f"jobs {jobs}; {environment}; load average before/after each case: "
         + ", ".join(f"{r.case} {r.tool.load_before:.1f}/{r.tool.load_after:.1f}" for r in results),
         "",
         table(results),
@@ -345,10 +359,14 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--scratch", type=Path, default=None, help="where targets are written (default: a temp dir)")
     ap.add_argument("--tool-path", default=None, metavar="DIR",
                     help="run the migrate package found in DIR instead of this repository's (before/after comparisons)")
+    ap.add_argument("--tool-python", default=None, metavar="PATH",
+                    help="the interpreter that runs the tool (default: this one); e.g. .venv-tool/bin/python from "
+                         "`make install-tool`, which holds only the tool's dependencies, as users install it")
     ap.add_argument("--results", default=None, metavar="NAME",
                     help="append to benchmarks/results/NAME.md and NAME.jsonl (default: today's date)")
     args = ap.parse_args(argv)
     tool_path = str(Path(args.tool_path).resolve()) if args.tool_path else None
+    args.tool_python = os.path.abspath(args.tool_python) if args.tool_python else None  # a venv's python: no resolve()
     cases = [c.strip() for c in args.cases.split(",") if c.strip()]
     unknown = sorted(set(cases) - set(CASES))
     if unknown:
@@ -363,7 +381,7 @@ def main(argv: list[str] | None = None) -> int:
             p = Params(args.keys, parts, args.shape, "hdfs", args.deltas, args.seed)
             engine = run_engine(p, scratch) if args.engine else (None, "")
             for case in cases:
-                r = run_case(case, p, args.jobs, scratch, not args.no_floor, tool_path)
+                r = run_case(case, p, args.jobs, scratch, not args.no_floor, tool_path, args.tool_python)
                 if case == "convert-h2r" and engine[0]:
                     r.engine_s = engine[0]
                 if case == "convert-h2r" and engine[1]:
@@ -373,7 +391,7 @@ def main(argv: list[str] | None = None) -> int:
     finally:
         if args.scratch is None:
             shutil.rmtree(scratch, ignore_errors=True)
-    path = write_results(results, args.jobs, argv, args.results)
+    path = write_results(results, args.jobs, argv, args.results, tool_environment(args.tool_python))
     print(table(results))
     print("\n".join(targets(results)))
     print(f"results appended to {path}")
