@@ -112,9 +112,10 @@ class RunContext:
 def _run(args: argparse.Namespace) -> int:
     ctx = RunContext(args)
     try:
-        from .scratch import check_choice
+        from .scratch import check_choice, sweep
 
         check_choice()  # a bad STATESHIFT_SCRATCH stops the command before it writes anything
+        sweep()  # scratch folders of killed runs (on a tmpfs they hold memory until reboot)
         return int(args.run(args, ctx))
     finally:
         ctx.progress.close()

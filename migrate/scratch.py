@@ -17,14 +17,20 @@ will put there. Order of choice:
 4. the system temporary directory.
 
 Nothing here is durable state: target files are written and synced by :mod:`migrate.storage`
-in the target location, never here. tmpfs pages are memory that no process's RSS shows; the
+in the target location, never here. A folder is named ``<prefix><pid>-<random>``; a process that
+is killed cannot remove its folder, and on a tmpfs that folder holds memory until reboot, so
+:func:`sweep` (run at the start of every command) removes the folders of processes that no longer
+exist, once they are :data:`STALE_AFTER` seconds old. tmpfs pages are memory that no process's RSS shows; the
 benchmarks sample them (``benchmarks/measure.py``) so the memory figures include them.
 """
 
 from __future__ import annotations
 
 import os
+import re
+import shutil
 import tempfile
+import time
 
 from .errors import UsageError
 
@@ -32,6 +38,11 @@ SHM = "/dev/shm"
 #: memory and tmpfs space left untouched when choosing tmpfs for scratch
 RESERVE = 2 << 30
 ENV = "STATESHIFT_SCRATCH"
+#: a dead process's scratch folder is removed only once it has not changed for this long
+#: (seconds), far longer than one partition takes: a live process in another PID namespace that
+#: shares the folder would look dead from here
+STALE_AFTER = 3600
+_OURS = re.compile(r"^stateshift-[a-z]+(?:-[a-z]+)*-(\d+)-[A-Za-z0-9_]+$")
 
 
 def _is_tmpfs(path: str, mounts: str = "/proc/mounts") -> bool:
@@ -95,5 +106,49 @@ def directory(need: int | None) -> str:
 
 
 def make(prefix: str, need: int | None) -> str:
-    """A new scratch folder (the caller removes it) for about ``need`` bytes."""
-    return tempfile.mkdtemp(prefix=prefix, dir=directory(need))
+    """A new scratch folder (the caller removes it) for about ``need`` bytes, named with this
+    process's id (see :func:`sweep`)."""
+    return tempfile.mkdtemp(prefix=f"{prefix}{os.getpid()}-", dir=directory(need))
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)  # signal 0: only the existence and permission checks (kill(2))
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True  # exists, another user's
+    except OSError:
+        return True  # unknown: keep the folder
+    return True
+
+
+def sweep(now: float | None = None) -> list[str]:
+    """Remove scratch folders left by killed stateshift processes in every place :func:`directory`
+    may choose (the user's folder, ``TMPDIR`` or the system temporary directory, ``/dev/shm``):
+    folders named by :func:`make`, owned by this user, not symbolic links, whose process no longer
+    exists and which have not changed for :data:`STALE_AFTER` seconds. Returns the removed paths.
+    Errors are ignored: this is housekeeping, never a reason to stop a command."""
+    now = time.time() if now is None else now
+    places = {os.environ.get(ENV) or "", tempfile.gettempdir(), SHM} - {""}
+    removed = []
+    for place in sorted(places):
+        try:
+            names = os.listdir(place)
+        except OSError:
+            continue
+        for name in names:
+            m = _OURS.match(name)
+            if not m or int(m.group(1)) in (0, os.getpid()):
+                continue
+            path = os.path.join(place, name)
+            try:
+                st = os.lstat(path)
+            except OSError:
+                continue
+            if (not os.path.isdir(path) or os.path.islink(path) or st.st_uid != os.getuid()
+                    or now - st.st_mtime < STALE_AFTER or _alive(int(m.group(1)))):
+                continue
+            shutil.rmtree(path, ignore_errors=True)
+            removed.append(path)
+    return removed

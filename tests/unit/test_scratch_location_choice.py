@@ -149,3 +149,66 @@ def test_the_last_mount_of_a_path_is_the_one_in_effect(tmp_path):
     assert scratch._is_tmpfs("/dev/shm", str(mounts)) is False
     mounts.write_text("/dev/vdb /dev/shm ext4 rw 0 0\ntmpfs /dev/shm tmpfs rw 0 0\n")
     assert scratch._is_tmpfs("/dev/shm", str(mounts)) is True
+
+
+# --- folders of killed runs ----------------------------------------------------------------------
+
+
+def dead_pid() -> int:
+    """The id of a process that has exited (and been waited for)."""
+    import subprocess
+    import sys
+
+    child = subprocess.Popen([sys.executable, "-c", "pass"])
+    child.wait()
+    return child.pid
+
+
+def test_make_names_the_folder_with_this_process(clean_env):
+    folder = Path(scratch.make("stateshift-rocksdb-w-", None))
+    assert folder.parent == clean_env
+    assert folder.name.startswith(f"stateshift-rocksdb-w-{os.getpid()}-")
+    assert scratch._OURS.match(folder.name).group(1) == str(os.getpid())
+
+
+def test_sweep_removes_only_old_folders_of_dead_processes(clean_env, monkeypatch, tmp_path):
+    shm = tmp_path / "shm"
+    shm.mkdir()
+    monkeypatch.setattr(scratch, "SHM", str(shm))
+    now = 1_000_000_000.0
+    old = now - scratch.STALE_AFTER - 1
+    dead = dead_pid()
+
+    def folder(place: Path, name: str, mtime: float) -> Path:
+        path = place / name
+        path.mkdir()
+        (path / "db").mkdir()
+        (path / "db" / "000008.sst").write_bytes(b"x" * 100)
+        os.utime(path, (mtime, mtime))
+        return path
+
+    gone = [folder(shm, f"stateshift-rocksdb-w-{dead}-abc_12", old), folder(clean_env, f"stateshift-rocksdb-r-{dead}-q9", old)]
+    kept = [
+        folder(shm, f"stateshift-rocksdb-w-{dead}-young", now - 5),  # not old enough
+        folder(shm, f"stateshift-rocksdb-w-{os.getppid()}-alive", old),  # its process runs
+        folder(shm, f"stateshift-rocksdb-w-{os.getpid()}-mine", old),  # this process
+        folder(shm, "stateshift-rocksdb-w-nopid", old),  # not named by make()
+        folder(shm, f"otherapp-{dead}-abc", old),  # not ours
+    ]
+    target = folder(tmp_path, "elsewhere", old)
+    (shm / f"stateshift-rocksdb-w-{dead}-link").symlink_to(target)
+    (shm / f"stateshift-rocksdb-w-{dead}-file").write_bytes(b"")
+    os.utime(shm / f"stateshift-rocksdb-w-{dead}-file", (old, old))
+
+    removed = scratch.sweep(now=now)
+    assert sorted(removed) == sorted(str(p) for p in gone)
+    assert not any(p.exists() for p in gone)
+    assert all(p.exists() for p in kept)
+    assert (target / "db" / "000008.sst").exists()  # a link is never followed
+    assert (shm / f"stateshift-rocksdb-w-{dead}-file").exists()
+
+
+def test_sweep_ignores_places_that_do_not_exist(clean_env, monkeypatch, tmp_path):
+    monkeypatch.setattr(scratch, "SHM", str(tmp_path / "no-shm"))
+    monkeypatch.setenv(scratch.ENV, str(tmp_path / "no-such"))
+    assert scratch.sweep() == []
