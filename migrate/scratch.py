@@ -118,8 +118,8 @@ def _alive(pid: int) -> bool:
         return False
     except PermissionError:
         return True  # exists, another user's
-    except OSError:
-        return True  # unknown: keep the folder
+    except (OSError, OverflowError):
+        return True  # unknown (or no possible process id): keep the folder
     return True
 
 

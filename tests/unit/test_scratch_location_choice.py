@@ -193,6 +193,7 @@ def test_sweep_removes_only_old_folders_of_dead_processes(clean_env, monkeypatch
         folder(shm, f"stateshift-rocksdb-w-{os.getppid()}-alive", old),  # its process runs
         folder(shm, f"stateshift-rocksdb-w-{os.getpid()}-mine", old),  # this process
         folder(shm, "stateshift-rocksdb-w-nopid", old),  # not named by make()
+        folder(shm, f"stateshift-rocksdb-w-{10**30}-huge", old),  # no process can have that id
         folder(shm, f"otherapp-{dead}-abc", old),  # not ours
     ]
     target = folder(tmp_path, "elsewhere", old)
