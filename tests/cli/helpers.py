@@ -14,6 +14,7 @@ import os
 import shutil
 import subprocess
 import sys
+import tempfile
 import warnings
 from pathlib import Path
 
@@ -42,9 +43,17 @@ def stateshift(*args: str, env: dict[str, str] | None = None, timeout: float = 3
         full_env = {**os.environ, **env}
         if "STATESHIFT_CRASH_AT" not in env:
             full_env.pop("STATESHIFT_CRASH_AT", None)
-        return subprocess.run(
-            [sys.executable, "-m", "migrate", *args], capture_output=True, text=True, env=full_env, timeout=timeout, cwd=REPO
-        )
+        # a killed run cannot remove its scratch folder: give it one of ours (not /dev/shm) and remove it
+        scratch = None if "STATESHIFT_SCRATCH" in env else tempfile.mkdtemp(prefix="stateshift-test-scratch-")
+        if scratch:
+            full_env["STATESHIFT_SCRATCH"] = scratch
+        try:
+            return subprocess.run(
+                [sys.executable, "-m", "migrate", *args], capture_output=True, text=True, env=full_env, timeout=timeout, cwd=REPO
+            )
+        finally:
+            if scratch:
+                shutil.rmtree(scratch, ignore_errors=True)
     from migrate.cli import main
 
     out, err = io.StringIO(), io.StringIO()

@@ -7,6 +7,7 @@ import os
 import shutil
 import subprocess
 import sys
+import tempfile
 from pathlib import Path
 
 import pytest
@@ -20,7 +21,13 @@ def cli(*args: str, crash: str | None = None) -> subprocess.CompletedProcess:
     env = {k: v for k, v in os.environ.items() if k != "STATESHIFT_CRASH_AT"}
     if crash:
         env["STATESHIFT_CRASH_AT"] = crash
-    return subprocess.run([sys.executable, "-m", "migrate", *args], cwd=REPO, env=env, capture_output=True, text=True, timeout=600)
+    # a killed run cannot remove its scratch folder: give it one of ours (not /dev/shm) and remove it
+    scratch = tempfile.mkdtemp(prefix="stateshift-test-scratch-")
+    env["STATESHIFT_SCRATCH"] = scratch
+    try:
+        return subprocess.run([sys.executable, "-m", "migrate", *args], cwd=REPO, env=env, capture_output=True, text=True, timeout=600)
+    finally:
+        shutil.rmtree(scratch, ignore_errors=True)
 
 
 @pytest.mark.parametrize("crash", ["partition-written:1", "before-metadata:1"])
