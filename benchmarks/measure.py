@@ -18,6 +18,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import os
 import subprocess
 import threading
@@ -116,34 +117,37 @@ SAMPLE_INTERVAL = 0.2
 def run(argv: list[str], env: dict[str, str] | None = None, cwd: str | None = None, interval: float = SAMPLE_INTERVAL) -> Measured:
     out_path = f"/tmp/stateshift-bench-{os.getpid()}-{time.monotonic_ns()}"
     load_before = os.getloadavg()[0]
-    with open(out_path + ".out", "wb") as out, open(out_path + ".err", "wb") as err:
-        t0 = time.perf_counter()
-        proc = subprocess.Popen(argv, stdout=out, stderr=err, env=env, cwd=cwd)
-        peak = [0, 0, 0, 0]  # tree RSS, tree PSS, tmpfs growth, tree PSS + tmpfs growth
-        shm_base = shm_used_kb()
-        done = threading.Event()
+    try:
+        with open(out_path + ".out", "wb") as out, open(out_path + ".err", "wb") as err:
+            t0 = time.perf_counter()
+            proc = subprocess.Popen(argv, stdout=out, stderr=err, env=env, cwd=cwd)
+            peak = [0, 0, 0, 0]  # tree RSS, tree PSS, tmpfs growth, tree PSS + tmpfs growth
+            shm_base = shm_used_kb()
+            done = threading.Event()
 
-        def sample() -> None:
-            while not done.is_set():
-                rss, pss = tree_memory_kb(proc.pid)
-                shm = max(0, shm_used_kb() - shm_base)
-                peak[0], peak[1] = max(peak[0], rss), max(peak[1], pss)
-                peak[2], peak[3] = max(peak[2], shm), max(peak[3], pss + shm)
-                done.wait(interval)
+            def sample() -> None:
+                while not done.is_set():
+                    rss, pss = tree_memory_kb(proc.pid)
+                    shm = max(0, shm_used_kb() - shm_base)
+                    peak[0], peak[1] = max(peak[0], rss), max(peak[1], pss)
+                    peak[2], peak[3] = max(peak[2], shm), max(peak[3], pss + shm)
+                    done.wait(interval)
 
-        sampler = threading.Thread(target=sample, daemon=True)
-        sampler.start()
-        _, status, usage = os.wait4(proc.pid, 0)
-        wall = time.perf_counter() - t0
-        done.set()
-        sampler.join()
-        proc.returncode = os.waitstatus_to_exitcode(status)
-    with open(out_path + ".out", encoding="utf-8", errors="replace") as f:
-        stdout = f.read()
-    with open(out_path + ".err", encoding="utf-8", errors="replace") as f:
-        stderr = f.read()
-    os.remove(out_path + ".out")
-    os.remove(out_path + ".err")
+            sampler = threading.Thread(target=sample, daemon=True)
+            sampler.start()
+            _, status, usage = os.wait4(proc.pid, 0)
+            wall = time.perf_counter() - t0
+            done.set()
+            sampler.join()
+            proc.returncode = os.waitstatus_to_exitcode(status)
+        with open(out_path + ".out", encoding="utf-8", errors="replace") as f:
+            stdout = f.read()
+        with open(out_path + ".err", encoding="utf-8", errors="replace") as f:
+            stderr = f.read()
+    finally:  # also when the child cannot start (a wrong --tool-python): no capture files left in /tmp
+        for suffix in (".out", ".err"):
+            with contextlib.suppress(FileNotFoundError):
+                os.remove(out_path + suffix)
     return Measured(
         argv=tuple(argv),
         returncode=proc.returncode,
