@@ -29,6 +29,7 @@ from __future__ import annotations
 import os
 import re
 import shutil
+import stat
 import tempfile
 import time
 
@@ -139,15 +140,15 @@ def sweep(now: float | None = None) -> list[str]:
             continue
         for name in names:
             m = _OURS.match(name)
-            if not m or int(m.group(1)) in (0, os.getpid()):
+            pid = int(m.group(1)) if m else 0
+            if pid in (0, os.getpid()):
                 continue
             path = os.path.join(place, name)
             try:
-                st = os.lstat(path)
+                st = os.lstat(path)  # a symbolic link is not a directory here
             except OSError:
                 continue
-            if (not os.path.isdir(path) or os.path.islink(path) or st.st_uid != os.getuid()
-                    or now - st.st_mtime < STALE_AFTER or _alive(int(m.group(1)))):
+            if not stat.S_ISDIR(st.st_mode) or st.st_uid != os.getuid() or now - st.st_mtime < STALE_AFTER or _alive(pid):
                 continue
             shutil.rmtree(path, ignore_errors=True)
             removed.append(path)

@@ -48,9 +48,9 @@ from .base import (
     WrittenFile,
 )
 
-try:  # the compiled record walk (setup.py builds it when a C compiler is there)
+try:  # the compiled record walk and gather (setup.py builds them when a C compiler is there)
     from . import _framing
-except ImportError:  # not built: the Python walk
+except ImportError:  # not built: the Python walk and gather
     _framing = None
 
 _FILE = re.compile(r"^(\d+)(?:_([0-9A-Za-z-]+))?\.(delta|snapshot)$")
