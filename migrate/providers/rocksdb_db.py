@@ -26,6 +26,11 @@ from .. import scratch
 from ..errors import CorruptInput, Unsupported
 from .base import BATCH_ROWS
 
+try:  # the compiled byte-wise key order (setup.py builds it when a C compiler is there)
+    from . import _keysort
+except ImportError:  # not built: Arrow's sort
+    _keysort = None
+
 FORMAT_VERSION_CONF = "spark.sql.streaming.stateStore.rocksdb.formatVersion"
 COMPRESSION_CONF = "spark.sql.streaming.stateStore.rocksdb.compression"
 BLOCK_SIZE_CONF = "spark.sql.streaming.stateStore.rocksdb.blockSizeKB"
@@ -206,12 +211,27 @@ def sorted_runs(
     return runs, rows
 
 
+def byte_order(keys: pa.Array) -> pa.Array:
+    """The positions of ``keys`` (binary, no nulls) in byte-wise order, RocksDB's default
+    comparator: by the compiled radix sort of :mod:`._keysort` when it is built, else by Arrow's
+    ``sort_indices`` (the reference; equal keys may come in another order, which no caller relies
+    on: a run with a repeated key is refused). Measured on the 156k keys of one 10M-key benchmark
+    partition: 0.58-0.65 CPU us per key for Arrow, see the commit for the radix sort's figure.
+    """
+    binary = pa.types.is_binary(keys.type) or pa.types.is_large_binary(keys.type)
+    if _keysort is None or not binary or keys.null_count:
+        return pc.sort_indices(keys)
+    _, offsets, data = keys.buffers()
+    raw = _keysort.byte_order(offsets, data if data is not None else b"", keys.offset, len(keys), pa.types.is_large_binary(keys.type))
+    return pa.Array.from_buffers(pa.int64(), len(keys), [None, pa.py_buffer(raw)])
+
+
 def _write_run(keys: list[pa.Array], values: list[pa.Array], options, path: str, where: str) -> str:
     from rocksdict import SstFileWriter
 
     k = pa.concat_arrays(keys)
     v = pa.concat_arrays(values)
-    order = pc.sort_indices(k)  # byte-wise order, as RocksDB's default comparator
+    order = byte_order(k)
     k, v = k.take(order), v.take(order)
     if len(k) > 1 and pc.any(pc.equal(k.slice(1), k.slice(0, len(k) - 1))).as_py():
         raise CorruptInput("the rows to write carry the same key twice", where)

@@ -1,0 +1,344 @@
+/* migrate.providers._keysort: the byte-wise order of a binary array's elements, compiled.
+ *
+ * RocksDB's default comparator orders keys byte-wise: unsigned bytes compared in turn, a key
+ * that is a prefix of another first (common practice; the same order as Python's bytes). Every
+ * sorted run written to RocksDB (migrate/providers/rocksdb_db.py:_write_run) needs its keys in
+ * that order. Arrow's sort_indices gives it, and stays the reference and the fallback when this
+ * extension is not built (it is optional, see setup.py); this module is a most-significant-first
+ * radix sort of the same keys, faster on the keys the engine writes, whose first bytes (the
+ * UnsafeRow null bits and field offsets, the RocksDB version byte) are shared by most keys.
+ *
+ * byte_order(offsets, data, offset, count, large) -> bytes
+ *     offsets, data: the offsets and data buffers of an Arrow binary array (int32 offsets; int64
+ *     when ``large``, for large_binary), any objects exporting contiguous buffers; offset, count:
+ *     the array's slice (Array.offset, len(Array)). The array must have no nulls (the caller
+ *     checks). Returns the int64 positions 0..count-1 in byte-wise order of their keys, in native
+ *     byte order (Python reads it with numpy.frombuffer or as an Arrow int64 buffer). Equal keys
+ *     are adjacent, in no particular order. Raises ValueError when the offsets are not those of
+ *     a valid array over the data (decreasing, negative, past the end, buffer too short), before
+ *     sorting anything.
+ *
+ * The sort: every key's next 8 bytes, from a depth shared by the group, read as one big-endian
+ * number (zero-padded past the key's end), order the group by a least-significant-first radix
+ * pass over those numbers (a byte position every key agrees on is skipped). Each run of equal
+ * numbers is then split: the keys that end within those 8 bytes come first, ordered by length
+ * (such a key is a prefix of every longer key of the run, or equal to a key of its length), and
+ * the rest is a new group 8 bytes deeper. Groups of 32 or fewer keys are sorted by insertion with
+ * memcmp. Groups wait on an explicit list, not the C stack, so long shared prefixes cannot
+ * overflow it; every key takes part in at most length/8 + 1 groups, so the work is linear in the
+ * bytes of the keys.
+ *
+ * Bounds: the offsets are all checked against the data's length before the sort, in 64-bit
+ * arithmetic, and every read of a key stays within its [start, end). The sort runs without the
+ * GIL: it touches only the exported buffers and memory of its own (see _framing.c on why the
+ * exported memory stays valid).
+ */
+
+#define PY_SSIZE_T_CLEAN
+#include <Python.h>
+
+#include <stdint.h>
+#include <string.h>
+
+#define SMALL_GROUP 32
+
+typedef struct {
+    uint64_t chunk;  /* 8 bytes of the key from the group's depth, big-endian, zero-padded */
+    int64_t pos;     /* the key's position in the array */
+} item_t;
+
+typedef struct {
+    int64_t lo, hi, depth;
+} group_t;
+
+typedef struct {
+    const unsigned char *data;
+    const int32_t *o32;  /* offsets, already moved to the array's slice; one of the two is set */
+    const int64_t *o64;
+} keys_t;
+
+static inline int64_t
+key_start(const keys_t *k, int64_t pos)
+{
+    return k->o64 ? k->o64[pos] : (int64_t)k->o32[pos];
+}
+
+static inline int64_t
+key_end(const keys_t *k, int64_t pos)
+{
+    return k->o64 ? k->o64[pos + 1] : (int64_t)k->o32[pos + 1];
+}
+
+/* Bytes [depth, depth + 8) of the key as a big-endian number, zero past its end. */
+static inline uint64_t
+chunk_at(const keys_t *k, int64_t pos, int64_t depth)
+{
+    int64_t start = key_start(k, pos) + depth, end = key_end(k, pos);
+    int64_t have = end - start;
+    const unsigned char *p = k->data + start;
+    uint64_t c = 0;
+    if (have >= 8) {
+        for (int j = 0; j < 8; j++)
+            c = (c << 8) | p[j];
+        return c;
+    }
+    for (int j = 0; j < 8; j++)
+        c = (c << 8) | (j < have ? p[j] : 0);
+    return c;
+}
+
+/* Byte-wise comparison of two keys that agree before depth (both at least depth long). */
+static inline int
+compare_from(const keys_t *k, int64_t a, int64_t b, int64_t depth)
+{
+    int64_t sa = key_start(k, a) + depth, sb = key_start(k, b) + depth;
+    int64_t la = key_end(k, a) - sa, lb = key_end(k, b) - sb;
+    int64_t m = la < lb ? la : lb;
+    int c = m > 0 ? memcmp(k->data + sa, k->data + sb, (size_t)m) : 0;
+    if (c)
+        return c;
+    return (la > lb) - (la < lb);
+}
+
+static void
+insertion_sort(const keys_t *k, item_t *a, int64_t m, int64_t depth)
+{
+    for (int64_t i = 1; i < m; i++) {
+        item_t x = a[i];
+        int64_t j = i;
+        while (j > 0 && compare_from(k, a[j - 1].pos, x.pos, depth) > 0) {
+            a[j] = a[j - 1];
+            j--;
+        }
+        a[j] = x;
+    }
+}
+
+/* Order a[0..m) by chunk: least-significant byte first, one stable counting pass per byte,
+ * skipping the bytes every item agrees on. t is scratch room for m items. */
+static void
+radix_by_chunk(item_t *a, item_t *t, int64_t m)
+{
+    static const int BYTES = 8;
+    int64_t counts[8][256];
+    memset(counts, 0, sizeof(counts));
+    for (int64_t i = 0; i < m; i++) {
+        uint64_t c = a[i].chunk;
+        for (int b = 0; b < BYTES; b++)
+            counts[b][(c >> (8 * b)) & 0xff]++;
+    }
+    item_t *src = a, *dst = t;
+    for (int b = 0; b < BYTES; b++) {
+        int64_t *cnt = counts[b];
+        int same = 0;
+        for (int v = 0; v < 256; v++) {
+            if (cnt[v] == m) {
+                same = 1;
+                break;
+            }
+        }
+        if (same)
+            continue;
+        int64_t at = 0;
+        for (int v = 0; v < 256; v++) {
+            int64_t n = cnt[v];
+            cnt[v] = at;
+            at += n;
+        }
+        for (int64_t i = 0; i < m; i++)
+            dst[cnt[(src[i].chunk >> (8 * b)) & 0xff]++] = src[i];
+        item_t *swap = src;
+        src = dst;
+        dst = swap;
+    }
+    if (src != a)
+        memcpy(a, src, (size_t)m * sizeof(item_t));
+}
+
+/* Push a group; 0 on success, -1 when out of memory. */
+static int
+push(group_t **list, int64_t *len, int64_t *cap, int64_t lo, int64_t hi, int64_t depth)
+{
+    if (*len == *cap) {
+        int64_t grown = *cap ? 2 * *cap : 64;
+        group_t *more = PyMem_RawRealloc(*list, (size_t)grown * sizeof(group_t));
+        if (more == NULL)
+            return -1;
+        *list = more;
+        *cap = grown;
+    }
+    (*list)[(*len)++] = (group_t){lo, hi, depth};
+    return 0;
+}
+
+/* Sort items[0..n) (pos set, chunk free) byte-wise; t is scratch room for n items.
+ * 0 on success, -1 when out of memory. Needs no GIL (PyMem_Raw allocator only). */
+static int
+sort_keys(const keys_t *k, item_t *items, item_t *t, int64_t n)
+{
+    group_t *list = NULL;
+    int64_t len = 0, cap = 0;
+    if (push(&list, &len, &cap, 0, n, 0) < 0)
+        return -1;
+    while (len > 0) {
+        group_t g = list[--len];
+        item_t *a = items + g.lo;
+        int64_t m = g.hi - g.lo;
+        if (m < 2)
+            continue;
+        if (m <= SMALL_GROUP) {
+            insertion_sort(k, a, m, g.depth);
+            continue;
+        }
+        for (int64_t i = 0; i < m; i++)
+            a[i].chunk = chunk_at(k, a[i].pos, g.depth);
+        radix_by_chunk(a, t, m);
+        int64_t next = g.depth + 8;
+        for (int64_t i = 0; i < m;) {
+            int64_t j = i + 1;
+            while (j < m && a[j].chunk == a[i].chunk)
+                j++;
+            if (j - i > 1) {
+                /* keys that end by `next` first (stable partition through t), by length */
+                int64_t ended = 0, w = 0;
+                for (int64_t x = i; x < j; x++) {
+                    int64_t kl = key_end(k, a[x].pos) - key_start(k, a[x].pos);
+                    if (kl <= next) {
+                        a[x].chunk = (uint64_t)kl;
+                        a[i + ended++] = a[x];
+                    } else {
+                        t[w++] = a[x];
+                    }
+                }
+                memcpy(a + i + ended, t, (size_t)w * sizeof(item_t));
+                if (ended > 1)
+                    radix_by_chunk(a + i, t, ended);
+                if (w > 1 && push(&list, &len, &cap, g.lo + i + ended, g.lo + j, next) < 0) {
+                    PyMem_RawFree(list);
+                    return -1;
+                }
+            }
+            i = j;
+        }
+    }
+    PyMem_RawFree(list);
+    return 0;
+}
+
+PyDoc_STRVAR(byte_order_doc,
+"byte_order(offsets, data, offset, count, large) -> bytes\n\n"
+"The int64 positions of a binary array's elements in byte-wise order (see the module source).");
+
+static PyObject *
+byte_order(PyObject *self, PyObject *args)
+{
+    PyObject *offsets_obj, *data_obj;
+    Py_ssize_t offset, count;
+    int large;
+    if (!PyArg_ParseTuple(args, "OOnnp", &offsets_obj, &data_obj, &offset, &count, &large))
+        return NULL;
+    if (offset < 0 || count < 0) {
+        PyErr_SetString(PyExc_ValueError, "offset and count must not be negative");
+        return NULL;
+    }
+    Py_buffer ov, dv;
+    if (PyObject_GetBuffer(offsets_obj, &ov, PyBUF_C_CONTIGUOUS) < 0)
+        return NULL;
+    if (PyObject_GetBuffer(data_obj, &dv, PyBUF_C_CONTIGUOUS) < 0) {
+        PyBuffer_Release(&ov);
+        return NULL;
+    }
+    PyObject *result = NULL;
+    item_t *items = NULL, *t = NULL;
+    void *aligned = NULL;  /* a copy of offsets that are not aligned for their width */
+    keys_t k = {(const unsigned char *)dv.buf, NULL, NULL};
+    int failed = 0;
+    int64_t width = large ? 8 : 4;
+    int64_t n = (int64_t)count;
+    if (((int64_t)ov.len) / width < (int64_t)offset + n + 1) {
+        PyErr_SetString(PyExc_ValueError, "the offsets buffer is shorter than the array's slice needs");
+        goto done;
+    }
+    const char *obase = (const char *)ov.buf + (int64_t)offset * width;
+    if (((uintptr_t)obase) % (uintptr_t)width) {
+        aligned = PyMem_Malloc((size_t)(n + 1) * (size_t)width);
+        if (aligned == NULL) {
+            PyErr_NoMemory();
+            goto done;
+        }
+        memcpy(aligned, obase, (size_t)(n + 1) * (size_t)width);
+        obase = aligned;
+    }
+    if (large)
+        k.o64 = (const int64_t *)obase;
+    else
+        k.o32 = (const int32_t *)obase;
+    {
+        int64_t prev = key_start(&k, 0);
+        int bad = prev < 0;
+        for (int64_t i = 1; i <= n && !bad; i++) {
+            int64_t o = key_start(&k, i);
+            bad = o < prev;
+            prev = o;
+        }
+        if (bad || prev > (int64_t)dv.len) {
+            PyErr_SetString(PyExc_ValueError, "the offsets are not those of a binary array over the data");
+            goto done;
+        }
+    }
+    items = PyMem_RawMalloc((size_t)(n ? n : 1) * sizeof(item_t));
+    t = PyMem_RawMalloc((size_t)(n ? n : 1) * sizeof(item_t));
+    if (items == NULL || t == NULL) {
+        PyErr_NoMemory();
+        goto done;
+    }
+    for (int64_t i = 0; i < n; i++)
+        items[i].pos = i;
+    Py_BEGIN_ALLOW_THREADS
+    failed = sort_keys(&k, items, t, n);
+    Py_END_ALLOW_THREADS
+    PyMem_RawFree(t);
+    t = NULL;
+    if (failed) {
+        PyErr_NoMemory();
+        goto done;
+    }
+    result = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(n * 8));
+    if (result == NULL)
+        goto done;
+    {
+        int64_t *out = (int64_t *)PyBytes_AS_STRING(result);
+        for (int64_t i = 0; i < n; i++)
+            out[i] = items[i].pos;
+    }
+done:
+    PyMem_Free(aligned);
+    PyMem_RawFree(items);
+    PyMem_RawFree(t);
+    PyBuffer_Release(&dv);
+    PyBuffer_Release(&ov);
+    return result;
+}
+
+static PyMethodDef keysort_methods[] = {
+    {"byte_order", byte_order, METH_VARARGS, byte_order_doc},
+    {NULL, NULL, 0, NULL},
+};
+
+static struct PyModuleDef keysort_module = {
+    PyModuleDef_HEAD_INIT,
+    "migrate.providers._keysort",
+    "The byte-wise order of a binary array's keys, compiled (see migrate.providers.rocksdb_db).",
+    0,
+    keysort_methods,
+    NULL,
+    NULL,
+    NULL,
+    NULL,
+};
+
+PyMODINIT_FUNC
+PyInit__keysort(void)
+{
+    return PyModule_Create(&keysort_module);
+}

@@ -1,0 +1,159 @@
+"""The compiled byte-wise key order (``migrate.providers._keysort``) sorts exactly as RocksDB's
+default comparator orders keys.
+
+References outside the extension: Python's ``sorted`` of the keys as ``bytes`` (byte-wise:
+unsigned bytes in turn, a prefix first, the same order as RocksDB's BytewiseComparator; common
+practice) and Arrow's ``pc.sort_indices`` (the fallback). Inputs: hypothesis lists built to hit
+the radix sort's corners (zero bytes, keys that are prefixes of others, long shared prefixes,
+lengths around the 8-byte steps, repeated keys, groups above and below the 32-key insertion
+sort), seeded random keys shaped like the engine's (a RocksDB version byte, UnsafeRow null bits,
+field offsets, a little-endian long and a string), sliced arrays, large_binary, unaligned offset
+buffers, and offsets that do not describe an array (refused before any sort).
+
+Outside CI a missing extension skips these tests; under ``CI=true`` it fails them (as in
+test_hdfs_framing_compiled.py).
+"""
+
+from __future__ import annotations
+
+import importlib
+import os
+import random
+import struct
+from types import ModuleType
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from migrate.providers import rocksdb_db
+from migrate.providers.rocksdb_db import byte_order
+
+
+@pytest.fixture(scope="module")
+def keysort() -> ModuleType:
+    try:
+        return importlib.import_module("migrate.providers._keysort")
+    except ImportError as exc:
+        reason = (
+            f"the compiled key sort migrate.providers._keysort is not built ({exc}); "
+            "`pip install -e .` builds it when a C compiler and the Python headers are there"
+        )
+        if os.environ.get("CI") == "true":
+            pytest.fail(f"{reason}, and CI=true", pytrace=False)
+        pytest.skip(reason)
+
+
+def assert_byte_order(keys: list[bytes], binary: pa.DataType = pa.binary()) -> None:
+    arr = pa.array(keys, binary)
+    order = byte_order(arr)
+    assert pa.types.is_integer(order.type) and len(order) == len(keys)
+    assert sorted(order.to_pylist()) == list(range(len(keys)))  # a permutation
+    assert arr.take(order).to_pylist() == sorted(keys)  # Python's bytes order (byte-wise)
+    assert arr.take(order).equals(arr.take(pc.sort_indices(arr)))  # Arrow's sort
+
+
+def test_extension_is_built_and_used(keysort: ModuleType) -> None:
+    assert rocksdb_db._keysort is keysort
+
+
+_pieces = st.sampled_from([b"", b"\x00", b"\x00" * 7, b"\x00" * 8, b"\x00" * 9, b"a", b"ab" * 4, b"\xff", b"\xff" * 8, b"\x7f\x80"])
+_key = st.one_of(
+    st.binary(max_size=40),
+    st.lists(_pieces, max_size=5).map(b"".join),
+    st.tuples(st.sampled_from([b"", b"P" * 8, b"P" * 13, b"\x00" * 24]), st.binary(max_size=18)).map(b"".join),
+)
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(_key, max_size=200))
+def test_matches_pythons_order_on_generated_keys(keysort: ModuleType, keys: list[bytes]) -> None:
+    assert_byte_order(keys)
+    assert_byte_order(keys, pa.large_binary())
+
+
+@settings(max_examples=50, deadline=None)
+@given(st.lists(_key, min_size=1, max_size=60), st.integers(1, 30))
+def test_repeated_keys_are_adjacent(keysort: ModuleType, keys: list[bytes], times: int) -> None:
+    assert_byte_order(keys * times)
+
+
+def _engine_like(rng: random.Random, count: int) -> list[bytes]:
+    out = []
+    for _ in range(count):
+        text = rng.choice(["depot", "route", "bay", "crate-"]) + str(rng.randrange(0, 5000))
+        data = text.encode()
+        padded = data + b"\x00" * (-len(data) % 8)
+        # version byte, null bits, (offset << 32 | size) and a long, all little-endian words
+        out.append(b"\x00" + bytes(8) + struct.pack("<II", len(data), 24) + struct.pack("<q", rng.randrange(-(2**40), 2**40)) + padded)
+    return out
+
+
+@pytest.mark.parametrize("count", [0, 1, 31, 32, 33, 1000, 20000])
+def test_matches_pythons_order_on_engine_shaped_keys(keysort: ModuleType, count: int) -> None:
+    keys = _engine_like(random.Random(count), count)
+    assert_byte_order(keys)
+
+
+def test_long_shared_prefixes_and_a_comb_of_prefixes(keysort: ModuleType) -> None:
+    rng = random.Random(7)
+    shared = [b"S" * 5000 + rng.randbytes(rng.randrange(0, 12)) for _ in range(300)]
+    comb = [b"\x00" * i for i in range(400)] + [b"a" * i for i in range(400)]
+    rng.shuffle(comb)
+    assert_byte_order(shared)
+    assert_byte_order(comb)
+
+
+def test_sliced_arrays_sort_their_own_slice(keysort: ModuleType) -> None:
+    keys = _engine_like(random.Random(3), 500)
+    for binary in (pa.binary(), pa.large_binary()):
+        arr = pa.array(keys, binary).slice(37, 400)
+        order = byte_order(arr)
+        assert arr.take(order).to_pylist() == sorted(keys[37:437])
+
+
+def test_unaligned_offsets_are_read_right(keysort: ModuleType) -> None:
+    keys = _engine_like(random.Random(5), 300)
+    arr = pa.array(keys, pa.binary())
+    _, offsets, data = arr.buffers()
+    shifted = bytearray(b"\x01") + bytearray(offsets.to_pybytes())
+    raw = keysort.byte_order(memoryview(shifted)[1:], data, 0, len(keys), False)
+    order = np.frombuffer(raw, dtype=np.int64)
+    assert [keys[i] for i in order] == sorted(keys)
+
+
+@pytest.mark.parametrize(
+    ("offsets", "data", "offset", "count", "message"),
+    [
+        (np.array([0, 4, 2], np.int32), b"abcd", 0, 2, "not those of a binary array"),  # decreasing
+        (np.array([-1, 2], np.int32), b"abcd", 0, 1, "not those of a binary array"),  # negative
+        (np.array([0, 2, 9], np.int32), b"abcd", 0, 2, "not those of a binary array"),  # past the end
+        (np.array([0, 2], np.int32), b"abcd", 0, 2, "shorter"),  # too few offsets
+        (np.array([0, 2], np.int32), b"abcd", 1, 1, "shorter"),  # slice past the offsets
+        (np.array([0, 2], np.int32), b"abcd", -1, 1, "negative"),
+    ],
+)
+def test_offsets_that_describe_no_array_are_refused(keysort: ModuleType, offsets, data, offset, count, message) -> None:
+    with pytest.raises(ValueError, match=message):
+        keysort.byte_order(offsets.tobytes(), data, offset, count, False)
+
+
+def test_large_offsets_are_checked_too(keysort: ModuleType) -> None:
+    with pytest.raises(ValueError, match="not those of a binary array"):
+        keysort.byte_order(np.array([0, 3, 2**40], np.int64).tobytes(), b"abcd", 0, 2, True)
+    assert np.frombuffer(keysort.byte_order(np.array([0, 3, 4], np.int64).tobytes(), b"bcda", 0, 2, True), np.int64).tolist() == [1, 0]
+
+
+def test_without_the_extension_arrow_sorts(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(rocksdb_db, "_keysort", None)
+    assert_byte_order(_engine_like(random.Random(9), 2000))
+
+
+def test_keys_with_nulls_or_other_types_go_to_arrow(keysort: ModuleType) -> None:
+    with_null = pa.array([b"b", None, b"a"], pa.binary())
+    assert byte_order(with_null).equals(pc.sort_indices(with_null))
+    strings = pa.array(["b", "a", "c"])
+    assert byte_order(strings).to_pylist() == [1, 0, 2]
