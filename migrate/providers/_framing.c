@@ -1,4 +1,4 @@
-/* migrate.providers._framing: the record walk and gather of heap-map state files, compiled.
+/* migrate.providers._framing: the record walk, gather and framing of heap-map state files, compiled.
  *
  * A decompressed heap-map file is a run of records
  *
@@ -26,6 +26,15 @@
  *     buffer viewed as alternating header / key / header / value elements; that stays the
  *     reference and the fallback. Raises ValueError when a start does not hold a record within
  *     the data (starts that did not come from record_starts); it never returns a partial result.
+ *
+ * frame_records(key_offsets, keys, key_offset, keys_large, value_offsets, values, value_offset,
+ *               values_large, count) -> bytes
+ *     The other direction, for the files this tool writes (no removals): the records of count
+ *     rows from the buffers of an Arrow binary key array and value array (int32 offsets, or
+ *     int64 when *_large) and each array's slice offset, without the end marker. This is what
+ *     migrate/providers/hdfs.py:_frame_batch_py does with numpy scatters of every byte; that stays
+ *     the reference and the fallback. Raises ValueError for offsets that do not describe an array
+ *     over the data or an element of 2**31 bytes or more (its length cannot be an int32).
  *
  * Bounds: every length is checked against the bytes that remain before it is used, in 64-bit
  * arithmetic (int64_t), so neither a huge length nor a buffer of 2 GiB or more can overflow or make
@@ -297,16 +306,163 @@ done:
     return result;
 }
 
+/* ------------------------------------------------------------------------ framing (writing) */
+
+/* One binary array's offsets and data, exported. */
+typedef struct {
+    Py_buffer ov, dv;
+    int have_ov, have_dv;
+    const unsigned char *obase;  /* the offsets of the array's slice, possibly unaligned */
+    int large;
+} binary_t;
+
+static inline int64_t
+offset_at(const binary_t *b, int64_t i)
+{
+    if (b->large) {
+        int64_t v;
+        memcpy(&v, b->obase + 8 * i, 8);
+        return v;
+    }
+    int32_t v;
+    memcpy(&v, b->obase + 4 * i, 4);
+    return (int64_t)v;
+}
+
+static void
+release_binary(binary_t *b)
+{
+    if (b->have_dv)
+        PyBuffer_Release(&b->dv);
+    if (b->have_ov)
+        PyBuffer_Release(&b->ov);
+    b->have_dv = b->have_ov = 0;
+}
+
+/* Export the buffers of one array's slice [offset, offset + count) and check its offsets: from
+ * 0 or more, never decreasing, within the data, every element shorter than 2**31 (a record's
+ * lengths are int32). On failure an exception is set, nothing is left exported, and -1 is
+ * returned; *bytes is the data the slice covers. */
+static int
+open_binary(binary_t *b, PyObject *offsets, PyObject *data, Py_ssize_t offset, int large, int64_t count,
+            int64_t *bytes, const char *what)
+{
+    memset(b, 0, sizeof(*b));
+    b->large = large;
+    if (offset < 0) {
+        PyErr_Format(PyExc_ValueError, "the %s offset must not be negative", what);
+        return -1;
+    }
+    if (PyObject_GetBuffer(offsets, &b->ov, PyBUF_SIMPLE) < 0)
+        return -1;
+    b->have_ov = 1;
+    if (PyObject_GetBuffer(data, &b->dv, PyBUF_SIMPLE) < 0) {
+        release_binary(b);
+        return -1;
+    }
+    b->have_dv = 1;
+    int64_t width = large ? 8 : 4;
+    if ((int64_t)b->ov.len / width < (int64_t)offset + count + 1) {
+        PyErr_Format(PyExc_ValueError, "the %s offsets buffer is shorter than the slice needs", what);
+        release_binary(b);
+        return -1;
+    }
+    b->obase = (const unsigned char *)b->ov.buf + (int64_t)offset * width;
+    int64_t prev = offset_at(b, 0);
+    int bad = prev < 0;
+    for (int64_t i = 1; i <= count && !bad; i++) {
+        int64_t o = offset_at(b, i);
+        bad = o < prev || o - prev > INT32_MAX;
+        prev = o;
+    }
+    if (bad || prev > (int64_t)b->dv.len) {
+        PyErr_Format(PyExc_ValueError, "the %s offsets are not those of a binary array over the data "
+                     "with elements shorter than 2**31 bytes", what);
+        release_binary(b);
+        return -1;
+    }
+    *bytes = prev - offset_at(b, 0);
+    return 0;
+}
+
+static inline void
+put_be_int32(unsigned char *p, int64_t v)  /* 0 <= v <= INT32_MAX */
+{
+    uint32_t u = (uint32_t)v;
+    p[0] = (unsigned char)(u >> 24);
+    p[1] = (unsigned char)(u >> 16);
+    p[2] = (unsigned char)(u >> 8);
+    p[3] = (unsigned char)u;
+}
+
+PyDoc_STRVAR(frame_records_doc,
+"frame_records(key_offsets, keys, key_offset, keys_large, value_offsets, values, value_offset,\n"
+"              values_large, count, /) -> bytes\n"
+"\n"
+"The records (int32 BE key length, key, int32 BE value length, value) of count rows, from the\n"
+"offsets and data buffers of an Arrow binary key array and value array (int32 offsets, or int64\n"
+"when *_large) and each array's slice offset; no end marker. The inverse of gather_records for\n"
+"files without removals. Raises ValueError for offsets that do not describe such an array or\n"
+"an element of 2**31 bytes or more.");
+
+static PyObject *
+frame_records(PyObject *module, PyObject *args)
+{
+    PyObject *ko, *kd, *vo, *vd;
+    Py_ssize_t koffset, voffset, count;
+    int klarge, vlarge;
+    binary_t keys, values;
+    int64_t key_bytes = 0, value_bytes = 0;
+
+    (void)module;
+    if (!PyArg_ParseTuple(args, "OOnpOOnpn:frame_records", &ko, &kd, &koffset, &klarge, &vo, &vd, &voffset, &vlarge, &count))
+        return NULL;
+    if (count < 0) {
+        PyErr_SetString(PyExc_ValueError, "count must not be negative");
+        return NULL;
+    }
+    if (open_binary(&keys, ko, kd, koffset, klarge, (int64_t)count, &key_bytes, "key") < 0)
+        return NULL;
+    if (open_binary(&values, vo, vd, voffset, vlarge, (int64_t)count, &value_bytes, "value") < 0) {
+        release_binary(&keys);
+        return NULL;
+    }
+    /* each sum is within its data buffer, and count <= each offsets buffer's length / 4 */
+    PyObject *out = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(8 * (int64_t)count + key_bytes + value_bytes));
+    if (out != NULL) {
+        unsigned char *w = (unsigned char *)PyBytes_AS_STRING(out);
+        const unsigned char *kdata = (const unsigned char *)keys.dv.buf, *vdata = (const unsigned char *)values.dv.buf;
+        Py_BEGIN_ALLOW_THREADS
+        int64_t ks = offset_at(&keys, 0), vs = offset_at(&values, 0);
+        for (int64_t i = 0; i < (int64_t)count; i++) {
+            int64_t ke = offset_at(&keys, i + 1), ve = offset_at(&values, i + 1);
+            put_be_int32(w, ke - ks);
+            memcpy(w + 4, kdata + ks, (size_t)(ke - ks));
+            w += 4 + (ke - ks);
+            put_be_int32(w, ve - vs);
+            memcpy(w + 4, vdata + vs, (size_t)(ve - vs));
+            w += 4 + (ve - vs);
+            ks = ke;
+            vs = ve;
+        }
+        Py_END_ALLOW_THREADS
+    }
+    release_binary(&values);
+    release_binary(&keys);
+    return out;
+}
+
 static PyMethodDef framing_methods[] = {
     {"record_starts", record_starts, METH_VARARGS, record_starts_doc},
     {"gather_records", gather_records, METH_VARARGS, gather_records_doc},
+    {"frame_records", frame_records, METH_VARARGS, frame_records_doc},
     {NULL, NULL, 0, NULL},
 };
 
 static struct PyModuleDef framing_module = {
     PyModuleDef_HEAD_INIT,
     "migrate.providers._framing",
-    "The record walk and gather of heap-map state files, compiled (see migrate.providers.hdfs).",
+    "The record walk, gather and framing of heap-map state files, compiled (see migrate.providers.hdfs).",
     0,
     framing_methods,
     NULL,

@@ -253,6 +253,23 @@ def _offsets(arr: pa.Array) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _frame_batch(batch: pa.RecordBatch) -> bytes:
+    """The records of one batch without the end marker: by the compiled ``frame_records`` of
+    :mod:`._framing` when it is built, else :func:`_frame_batch_py` (the reference). Measured on
+    four 156k-row partitions of the 10M-key benchmark checkpoint: see the commit."""
+    keys, values = batch.column("key"), batch.column("value")
+    compiled = _framing is not None and all(
+        (pa.types.is_binary(a.type) or pa.types.is_large_binary(a.type)) and not a.null_count for a in (keys, values)
+    )
+    if not compiled:
+        return _frame_batch_py(batch)
+    parts = []
+    for arr in (keys, values):
+        _, offsets, data = arr.buffers()
+        parts += [offsets, data if data is not None else b"", arr.offset, pa.types.is_large_binary(arr.type)]
+    return _framing.frame_records(*parts, batch.num_rows)
+
+
+def _frame_batch_py(batch: pa.RecordBatch) -> bytes:
     koffs, kdata = _offsets(batch.column("key"))
     voffs, vdata = _offsets(batch.column("value"))
     klen = np.diff(koffs)
