@@ -18,6 +18,13 @@
  *     a valid array over the data (decreasing, negative, past the end, buffer too short), before
  *     sorting anything.
  *
+ * last_of_each(offsets, data, offset, count, large) -> bytes
+ *     The same arguments and checks. Returns the int64 position of the last occurrence of each
+ *     distinct element, in byte-wise order of the elements: the replay of a heap-map snapshot
+ *     and its deltas (migrate/providers/hdfs.py:resolve_versions), where the records of all files
+ *     are one array in file order and the last write of a key wins. Equal keys are adjacent after
+ *     the sort; each run's largest position is kept.
+ *
  * The sort: every key's next 8 bytes, from a depth shared by the group, read as one big-endian
  * number (zero-padded past the key's end), order the group by a least-significant-first radix
  * pass over those numbers (a byte position every key agrees on is skipped). Each run of equal
@@ -225,6 +232,107 @@ sort_keys(const keys_t *k, item_t *items, item_t *t, int64_t n)
     return 0;
 }
 
+/* Parse (offsets, data, offset, count, large), check the offsets and sort the positions.
+ * On success returns the sorted items (count in *n; free with PyMem_RawFree) and leaves the
+ * buffers exported in *ov, *dv and a possible aligned copy in *aligned for the caller to release
+ * with release_sorted; on failure returns NULL with an exception set and nothing held. */
+static item_t *
+sorted_items(PyObject *args, const char *fname, Py_buffer *ov, Py_buffer *dv, void **aligned, keys_t *k, int64_t *n)
+{
+    PyObject *offsets_obj, *data_obj;
+    Py_ssize_t offset, count;
+    int large;
+    char format[32];
+    PyOS_snprintf(format, sizeof(format), "OOnnp:%s", fname);
+    *aligned = NULL;
+    if (!PyArg_ParseTuple(args, format, &offsets_obj, &data_obj, &offset, &count, &large))
+        return NULL;
+    if (offset < 0 || count < 0) {
+        PyErr_SetString(PyExc_ValueError, "offset and count must not be negative");
+        return NULL;
+    }
+    if (PyObject_GetBuffer(offsets_obj, ov, PyBUF_C_CONTIGUOUS) < 0)
+        return NULL;
+    if (PyObject_GetBuffer(data_obj, dv, PyBUF_C_CONTIGUOUS) < 0) {
+        PyBuffer_Release(ov);
+        return NULL;
+    }
+    item_t *items = NULL, *t = NULL;
+    int failed = 0;
+    int64_t width = large ? 8 : 4;
+    *n = (int64_t)count;
+    k->data = (const unsigned char *)dv->buf;
+    k->o32 = NULL;
+    k->o64 = NULL;
+    if (((int64_t)ov->len) / width < (int64_t)offset + *n + 1) {
+        PyErr_SetString(PyExc_ValueError, "the offsets buffer is shorter than the array's slice needs");
+        goto fail;
+    }
+    const char *obase = (const char *)ov->buf + (int64_t)offset * width;
+    if (((uintptr_t)obase) % (uintptr_t)width) {  /* offsets not aligned for their width: a copy */
+        *aligned = PyMem_Malloc((size_t)(*n + 1) * (size_t)width);
+        if (*aligned == NULL) {
+            PyErr_NoMemory();
+            goto fail;
+        }
+        memcpy(*aligned, obase, (size_t)(*n + 1) * (size_t)width);
+        obase = *aligned;
+    }
+    if (large)
+        k->o64 = (const int64_t *)obase;
+    else
+        k->o32 = (const int32_t *)obase;
+    {
+        int64_t prev = key_start(k, 0);
+        int bad = prev < 0;
+        for (int64_t i = 1; i <= *n && !bad; i++) {
+            int64_t o = key_start(k, i);
+            bad = o < prev;
+            prev = o;
+        }
+        if (bad || prev > (int64_t)dv->len) {
+            PyErr_SetString(PyExc_ValueError, "the offsets are not those of a binary array over the data");
+            goto fail;
+        }
+    }
+    items = PyMem_RawMalloc((size_t)(*n ? *n : 1) * sizeof(item_t));
+    t = PyMem_RawMalloc((size_t)(*n ? *n : 1) * sizeof(item_t));
+    if (items == NULL || t == NULL) {
+        PyErr_NoMemory();
+        goto fail;
+    }
+    for (int64_t i = 0; i < *n; i++)
+        items[i].pos = i;
+    Py_BEGIN_ALLOW_THREADS
+    failed = sort_keys(k, items, t, *n);
+    Py_END_ALLOW_THREADS
+    PyMem_RawFree(t);
+    if (failed) {
+        PyErr_NoMemory();
+        PyMem_RawFree(items);
+        t = items = NULL;
+        goto fail;
+    }
+    return items;
+fail:
+    PyMem_RawFree(items);
+    PyMem_RawFree(t);
+    PyMem_Free(*aligned);
+    *aligned = NULL;
+    PyBuffer_Release(dv);
+    PyBuffer_Release(ov);
+    return NULL;
+}
+
+static void
+release_sorted(item_t *items, Py_buffer *ov, Py_buffer *dv, void *aligned)
+{
+    PyMem_RawFree(items);
+    PyMem_Free(aligned);
+    PyBuffer_Release(dv);
+    PyBuffer_Release(ov);
+}
+
 PyDoc_STRVAR(byte_order_doc,
 "byte_order(offsets, data, offset, count, large) -> bytes\n\n"
 "The int64 positions of a binary array's elements in byte-wise order (see the module source).");
@@ -232,96 +340,68 @@ PyDoc_STRVAR(byte_order_doc,
 static PyObject *
 byte_order(PyObject *self, PyObject *args)
 {
-    PyObject *offsets_obj, *data_obj;
-    Py_ssize_t offset, count;
-    int large;
-    if (!PyArg_ParseTuple(args, "OOnnp", &offsets_obj, &data_obj, &offset, &count, &large))
-        return NULL;
-    if (offset < 0 || count < 0) {
-        PyErr_SetString(PyExc_ValueError, "offset and count must not be negative");
-        return NULL;
-    }
+    (void)self;
     Py_buffer ov, dv;
-    if (PyObject_GetBuffer(offsets_obj, &ov, PyBUF_C_CONTIGUOUS) < 0)
+    void *aligned;
+    keys_t k;
+    int64_t n;
+    item_t *items = sorted_items(args, "byte_order", &ov, &dv, &aligned, &k, &n);
+    if (items == NULL)
         return NULL;
-    if (PyObject_GetBuffer(data_obj, &dv, PyBUF_C_CONTIGUOUS) < 0) {
-        PyBuffer_Release(&ov);
-        return NULL;
-    }
-    PyObject *result = NULL;
-    item_t *items = NULL, *t = NULL;
-    void *aligned = NULL;  /* a copy of offsets that are not aligned for their width */
-    keys_t k = {(const unsigned char *)dv.buf, NULL, NULL};
-    int failed = 0;
-    int64_t width = large ? 8 : 4;
-    int64_t n = (int64_t)count;
-    if (((int64_t)ov.len) / width < (int64_t)offset + n + 1) {
-        PyErr_SetString(PyExc_ValueError, "the offsets buffer is shorter than the array's slice needs");
-        goto done;
-    }
-    const char *obase = (const char *)ov.buf + (int64_t)offset * width;
-    if (((uintptr_t)obase) % (uintptr_t)width) {
-        aligned = PyMem_Malloc((size_t)(n + 1) * (size_t)width);
-        if (aligned == NULL) {
-            PyErr_NoMemory();
-            goto done;
-        }
-        memcpy(aligned, obase, (size_t)(n + 1) * (size_t)width);
-        obase = aligned;
-    }
-    if (large)
-        k.o64 = (const int64_t *)obase;
-    else
-        k.o32 = (const int32_t *)obase;
-    {
-        int64_t prev = key_start(&k, 0);
-        int bad = prev < 0;
-        for (int64_t i = 1; i <= n && !bad; i++) {
-            int64_t o = key_start(&k, i);
-            bad = o < prev;
-            prev = o;
-        }
-        if (bad || prev > (int64_t)dv.len) {
-            PyErr_SetString(PyExc_ValueError, "the offsets are not those of a binary array over the data");
-            goto done;
-        }
-    }
-    items = PyMem_RawMalloc((size_t)(n ? n : 1) * sizeof(item_t));
-    t = PyMem_RawMalloc((size_t)(n ? n : 1) * sizeof(item_t));
-    if (items == NULL || t == NULL) {
-        PyErr_NoMemory();
-        goto done;
-    }
-    for (int64_t i = 0; i < n; i++)
-        items[i].pos = i;
-    Py_BEGIN_ALLOW_THREADS
-    failed = sort_keys(&k, items, t, n);
-    Py_END_ALLOW_THREADS
-    PyMem_RawFree(t);
-    t = NULL;
-    if (failed) {
-        PyErr_NoMemory();
-        goto done;
-    }
-    result = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(n * 8));
-    if (result == NULL)
-        goto done;
-    {
+    PyObject *result = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(n * 8));
+    if (result != NULL) {
         int64_t *out = (int64_t *)PyBytes_AS_STRING(result);
         for (int64_t i = 0; i < n; i++)
             out[i] = items[i].pos;
     }
-done:
-    PyMem_Free(aligned);
-    PyMem_RawFree(items);
-    PyMem_RawFree(t);
-    PyBuffer_Release(&dv);
-    PyBuffer_Release(&ov);
+    release_sorted(items, &ov, &dv, aligned);
+    return result;
+}
+
+PyDoc_STRVAR(last_of_each_doc,
+"last_of_each(offsets, data, offset, count, large) -> bytes\n\n"
+"The int64 position of the last occurrence of every distinct element of a binary array, in\n"
+"byte-wise order of the elements (see the module source).");
+
+static PyObject *
+last_of_each(PyObject *self, PyObject *args)
+{
+    (void)self;
+    Py_buffer ov, dv;
+    void *aligned;
+    keys_t k;
+    int64_t n;
+    item_t *items = sorted_items(args, "last_of_each", &ov, &dv, &aligned, &k, &n);
+    if (items == NULL)
+        return NULL;
+    int64_t distinct = 0;
+    Py_BEGIN_ALLOW_THREADS
+    /* equal keys are adjacent after the sort, in no particular order: keep each run's largest
+     * position, compacted in place into items[0..distinct) */
+    for (int64_t i = 0; i < n;) {
+        int64_t last = items[i].pos, j = i + 1;
+        while (j < n && compare_from(&k, items[i].pos, items[j].pos, 0) == 0) {
+            if (items[j].pos > last)
+                last = items[j].pos;
+            j++;
+        }
+        items[distinct++].pos = last;
+        i = j;
+    }
+    Py_END_ALLOW_THREADS
+    PyObject *result = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(distinct * 8));
+    if (result != NULL) {
+        int64_t *out = (int64_t *)PyBytes_AS_STRING(result);
+        for (int64_t i = 0; i < distinct; i++)
+            out[i] = items[i].pos;
+    }
+    release_sorted(items, &ov, &dv, aligned);
     return result;
 }
 
 static PyMethodDef keysort_methods[] = {
     {"byte_order", byte_order, METH_VARARGS, byte_order_doc},
+    {"last_of_each", last_of_each, METH_VARARGS, last_of_each_doc},
     {NULL, NULL, 0, NULL},
 };
 

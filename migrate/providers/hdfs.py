@@ -12,13 +12,15 @@ S+1..V applied in order. A missing delta in that chain is an error, never a part
 Reading is vectorised: one tight loop finds the record offsets of each file
 (:func:`record_starts`), keys and values are gathered out of the decompressed buffer into one
 buffer each (:func:`record_arrays`), and the replay (last write wins, removals drop the key) is one
-dictionary encoding over all files of the chain (:func:`resolve_versions`). :func:`parse_records`
+byte-wise sort over all records of the chain, keeping the last of each run of equal keys
+(:func:`resolve_versions`; a dictionary encoding without the compiled sort). :func:`parse_records`
 stays the plain reference walk; every irregular file goes through it for its exact error.
 
 The record walk is the one step that cannot be vectorised (each offset depends on the lengths
 before it), and in Python it was the largest CPU cost of reading, so it is compiled:
 ``_framing.c`` (module :mod:`._framing`, an optional extension built by ``setup.py``) walks the
-buffer in C, and gathers the keys and values with one copy each. :func:`_record_starts_py` and
+buffer in C, and gathers the keys and values with one copy each; writing frames the records
+there too (``frame_records``, with :func:`_frame_batch_py` as its reference). :func:`_record_starts_py` and
 :func:`_record_arrays_py` are the reference walk and gather, and the fallback when the extension
 is not built; tests hold the two to the same offsets, arrays and errors.
 """
@@ -52,6 +54,10 @@ try:  # the compiled record walk and gather (setup.py builds them when a C compi
     from . import _framing
 except ImportError:  # not built: the Python walk and gather
     _framing = None
+try:  # the compiled byte-wise sort, whose last_of_each is the replay (see resolve_versions)
+    from . import _keysort
+except ImportError:  # not built: the replay by dictionary encoding
+    _keysort = None
 
 _FILE = re.compile(r"^(\d+)(?:_([0-9A-Za-z-]+))?\.(delta|snapshot)$")
 _END = b"\xff\xff\xff\xff"
@@ -204,7 +210,33 @@ def _record_arrays_py(data: bytes, starts: np.ndarray, large: bool) -> tuple[pa.
 
 def resolve_versions(files: list[tuple[pa.Array, pa.Array, np.ndarray]]) -> tuple[pa.Array, pa.Array]:
     """The map after applying the files' records in order: the last write of each key wins and a
-    removal drops the key (the engine's replay of a snapshot and its deltas).
+    removal drops the key (the engine's replay of a snapshot and its deltas). The survivors come
+    out in the file order of their last write.
+
+    With :mod:`._keysort` built, the records of all files are one array and its
+    ``last_of_each`` sorts them byte-wise and keeps the last position of each run of equal keys
+    (measured on the 915k records of four 10M-key benchmark partitions, three alternating runs:
+    0.32-0.37 CPU us per record by dictionary encoding, 0.23-0.26 by the sort); else :func:`_resolve_versions_dictionary`, the reference.
+    """
+    if not files or _keysort is None:
+        return _resolve_versions_dictionary(files)
+    key_type = pa.large_binary() if any(pa.types.is_large_binary(f[0].type) for f in files) else pa.binary()
+    keys = pa.chunked_array([f[0].cast(key_type) for f in files], key_type).combine_chunks()
+    values = pa.chunked_array([f[1].cast(key_type) for f in files], key_type).combine_chunks()
+    removed = np.concatenate([f[2] for f in files])
+    _, offsets, data = keys.buffers()
+    last = np.frombuffer(
+        _keysort.last_of_each(offsets, data if data is not None else b"", keys.offset, len(keys), key_type == pa.large_binary()),
+        dtype=np.int64,
+    )
+    if len(last) == len(removed) and not removed.any():  # nothing overwritten, nothing removed
+        return keys, values
+    order = pa.array(np.sort(last[~removed[last]]))
+    return keys.take(order), values.take(order)
+
+
+def _resolve_versions_dictionary(files: list[tuple[pa.Array, pa.Array, np.ndarray]]) -> tuple[pa.Array, pa.Array]:
+    """:func:`resolve_versions` without the compiled sort, and its reference.
 
     The records are numbered newest first and dictionary-encoded: a key's id is the order of its
     first appearance there, so the record where the running maximum of the ids grows is the

@@ -7,6 +7,7 @@ non-multiple-of-8 lengths, and are cut at random points to check the errors matc
 replay step alone (``resolve_versions``) is held to an ordered dict replay on hypothesis inputs.
 """
 
+import os
 import random
 import struct
 import subprocess
@@ -19,8 +20,16 @@ from hypothesis import strategies as st
 
 from migrate.codecs import codec_for
 from migrate.errors import CorruptInput
+from migrate.providers import hdfs
 from migrate.providers.base import ReadContext, StoreDir
-from migrate.providers.hdfs import HDFSProvider, parse_records, record_arrays, record_starts, resolve_versions
+from migrate.providers.hdfs import (
+    HDFSProvider,
+    _resolve_versions_dictionary,
+    parse_records,
+    record_arrays,
+    record_starts,
+    resolve_versions,
+)
 from migrate.storage import open_location
 
 END = struct.pack(">i", -1)
@@ -135,22 +144,50 @@ def as_arrays(records: list[tuple[bytes, bytes | None]], large: bool):
 record = st.tuples(st.binary(max_size=3), st.one_of(st.none(), st.binary(max_size=4)))
 
 
+REPLAYS = {"compiled sort": resolve_versions, "dictionary encoding": _resolve_versions_dictionary}
+
+
+def test_the_compiled_replay_is_the_one_used():
+    if hdfs._keysort is None:
+        reason = "migrate.providers._keysort is not built (`pip install -e .` builds it)"
+        if os.environ.get("CI") == "true":
+            pytest.fail(f"{reason}, and CI=true", pytrace=False)
+        pytest.skip(reason)
+
+
+@pytest.mark.parametrize("replay", REPLAYS.values(), ids=REPLAYS.keys())
 @settings(max_examples=300, deadline=None)
 @given(files=st.lists(st.lists(record, max_size=12), max_size=5), large=st.booleans())
-def test_resolve_versions_is_the_ordered_replay(files, large):
+def test_resolve_versions_is_the_ordered_replay(replay, files, large):
     """Last write wins, removals drop the key (also keys removed and written again, keys written
     twice in one file, keys removed that never existed), and the survivors come out in the file
     order of their last write; with binary and large_binary arrays."""
-    keys, values = resolve_versions([as_arrays(f, large) for f in files])
+    keys, values = replay([as_arrays(f, large) for f in files])
     assert list(zip(keys.to_pylist(), values.to_pylist())) == ordered_replay(files)
 
 
-def test_resolve_versions_without_overwrites_keeps_file_order_and_type():
+@pytest.mark.parametrize("replay", REPLAYS.values(), ids=REPLAYS.keys())
+@pytest.mark.parametrize("seed", range(4))
+def test_long_histories_replay_in_order(replay, seed):
+    """Thousands of records over a pool of engine-length keys (groups far above the compiled
+    sort's 32-key insertion sort, many writes and removals of each key)."""
+    rng = random.Random(seed)
+    pool = [b"\x00" * 8 + struct.pack("<q", rng.randrange(-(2**40), 2**40)) + rng.randbytes(rng.randrange(0, 20)) for _ in range(300)]
+    files = [
+        [(rng.choice(pool), None if rng.random() < 0.15 else rng.randbytes(rng.randrange(0, 12))) for _ in range(rng.randrange(0, 3000))]
+        for _ in range(rng.randrange(1, 7))
+    ]
+    keys, values = replay([as_arrays(f, seed % 2 == 1) for f in files])
+    assert list(zip(keys.to_pylist(), values.to_pylist())) == ordered_replay(files)
+
+
+@pytest.mark.parametrize("replay", REPLAYS.values(), ids=REPLAYS.keys())
+def test_resolve_versions_without_overwrites_keeps_file_order_and_type(replay):
     files = [[(b"b", b"2"), (b"a", b"1")], [(b"c", b"3")]]
-    keys, values = resolve_versions([as_arrays(f, False) for f in files])
+    keys, values = replay([as_arrays(f, False) for f in files])
     assert keys.to_pylist() == [b"b", b"a", b"c"] and values.to_pylist() == [b"2", b"1", b"3"]
     assert keys.type == values.type == pa.binary()
-    keys, values = resolve_versions([])
+    keys, values = replay([])
     assert len(keys) == len(values) == 0
 
 

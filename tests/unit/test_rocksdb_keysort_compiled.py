@@ -137,8 +137,22 @@ def test_unaligned_offsets_are_read_right(keysort: ModuleType) -> None:
     ],
 )
 def test_offsets_that_describe_no_array_are_refused(keysort: ModuleType, offsets, data, offset, count, message) -> None:
-    with pytest.raises(ValueError, match=message):
-        keysort.byte_order(offsets.tobytes(), data, offset, count, False)
+    for function in (keysort.byte_order, keysort.last_of_each):
+        with pytest.raises(ValueError, match=message):
+            function(offsets.tobytes(), data, offset, count, False)
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(_key, max_size=120), st.booleans())
+def test_last_of_each_keeps_every_distinct_keys_last_position(keysort: ModuleType, keys: list[bytes], sliced: bool) -> None:
+    """Against a dict built in order (a later position overwrites an earlier one), in byte-wise
+    order of the keys. The replay that uses it is tested in
+    test_hdfs_vectorised_reader_matches_replay.py."""
+    arr = pa.array([b"pad"] + keys, pa.binary()).slice(1) if sliced else pa.array(keys, pa.binary())
+    _, offsets, data = arr.buffers()
+    got = np.frombuffer(keysort.last_of_each(offsets, data, arr.offset, len(arr), False), np.int64).tolist()
+    last = {k: i for i, k in enumerate(keys)}
+    assert got == [last[k] for k in sorted(last)]
 
 
 def test_large_offsets_are_checked_too(keysort: ModuleType) -> None:
