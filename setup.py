@@ -1,15 +1,19 @@
 """Build hook for the compiled helpers; everything else about the package is in pyproject.toml.
 
 The extensions are optional: when they cannot be compiled (no C compiler, no Python headers) the
-install still succeeds and the tool uses the Python walk in migrate/providers/hdfs.py and Arrow's
-sort in migrate/providers/rocksdb_db.py.
+install still succeeds and the tool uses the Python (numpy, Arrow) reference of each: the walk,
+gather and framing in migrate/providers/hdfs.py, Arrow's sort in migrate/providers/rocksdb_db.py,
+the dictionary-encoding replay in hdfs.py and the numpy digest in migrate/digest.py.
 """
 
 from setuptools import Extension, setup
 
+BINARY_H = "migrate/providers/_binary.h"  # shared by two extensions; `depends` also puts it in the sdist
+
 setup(
     ext_modules=[
-        Extension("migrate.providers._framing", ["migrate/providers/_framing.c"], optional=True),
+        Extension("migrate.providers._framing", ["migrate/providers/_framing.c"], depends=[BINARY_H], optional=True),
         Extension("migrate.providers._keysort", ["migrate/providers/_keysort.c"], optional=True),
+        Extension("migrate._digest", ["migrate/_digest.c"], depends=[BINARY_H], optional=True),
     ]
 )

@@ -12,7 +12,10 @@ of each side are then mixed with the splitmix64 finaliser (common practice; cons
 memory, checked by the unit tests against a plain-Python reference) so rows are bound to their
 own key/value split.
 
-Everything is numpy over whole Arrow buffers: no per-row Python.
+Everything is numpy over whole Arrow buffers: no per-row Python. The compiled ``_digest.c``
+(module :mod:`migrate._digest`, an optional extension built by ``setup.py``) computes the same
+sums in one pass over the bytes; :func:`digest_batch` uses it for binary columns without nulls,
+and :func:`digest_batch_numpy` stays the reference and the fallback.
 """
 
 from __future__ import annotations
@@ -22,6 +25,11 @@ from dataclasses import dataclass
 
 import numpy as np
 import pyarrow as pa
+
+try:  # the compiled digest (setup.py builds it when a C compiler is there)
+    from . import _digest as _compiled
+except ImportError:  # not built: the numpy digest
+    _compiled = None
 
 _M1 = np.uint64(0xBF58476D1CE4E5B9)
 _M2 = np.uint64(0x94D049BB133111EB)
@@ -157,8 +165,29 @@ def _byte_lengths(arr: pa.Array) -> np.ndarray:
     return np.asarray(pc.binary_length(arr).fill_null(0), dtype=np.uint64)
 
 
+def _plain_binary(arr: pa.Array) -> bool:
+    return (pa.types.is_binary(arr.type) or pa.types.is_large_binary(arr.type)) and not arr.null_count
+
+
 def digest_batch(batch: pa.RecordBatch) -> Digest:
-    """Digest of one batch of ``key``/``value`` binary columns."""
+    """Digest of one batch of ``key``/``value`` binary columns: compiled when :mod:`._digest` is
+    built and both columns are binary without nulls (measured on 625k rows of four 10M-key
+    benchmark partitions, four alternating runs: 0.24-0.28 CPU us per row with numpy, 0.05 compiled),
+    else :func:`digest_batch_numpy`."""
+    n = batch.num_rows
+    keys, values = batch.column("key"), batch.column("value")
+    if n == 0 or _compiled is None or not (_plain_binary(keys) and _plain_binary(values)):
+        return digest_batch_numpy(batch)
+    args = []
+    for arr in (keys, values):
+        _, offsets, data = arr.buffers()
+        args += [offsets, data if data is not None else b"", arr.offset, pa.types.is_large_binary(arr.type)]
+    lane_a, lane_b = _compiled.digest_rows(*args, n)
+    return Digest(n, lane_a, lane_b)
+
+
+def digest_batch_numpy(batch: pa.RecordBatch) -> Digest:
+    """Digest of one batch of ``key``/``value`` binary columns, with numpy (the reference)."""
     n = batch.num_rows
     if n == 0:
         return Digest()

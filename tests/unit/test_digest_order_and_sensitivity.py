@@ -3,10 +3,24 @@
 import random
 
 import pyarrow as pa
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from migrate import digest
 from migrate.digest import Digest, digest_batch, digest_batches
+
+
+@pytest.fixture(autouse=True, scope="module", params=["compiled", "numpy"])
+def implementation(request):
+    """Every test here runs against the compiled digest (when built) and the numpy digest."""
+    saved = digest._compiled
+    if request.param == "numpy":
+        digest._compiled = None
+    elif saved is None:
+        pytest.skip("migrate._digest is not built (test_digest_compiled.py fails that under CI=true)")
+    yield request.param
+    digest._compiled = saved
 from migrate.providers.base import ROW_SCHEMA
 
 MASK = (1 << 64) - 1
