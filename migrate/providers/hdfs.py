@@ -20,9 +20,9 @@ The record walk is the one step that cannot be vectorised (each offset depends o
 before it), and in Python it was the largest CPU cost of reading, so it is compiled:
 ``_framing.c`` (module :mod:`._framing`, an optional extension built by ``setup.py``) walks the
 buffer in C, and gathers the keys and values with one copy each; writing frames the records
-there too (``frame_records``, with :func:`_frame_batch_py` as its reference). :func:`_record_starts_py` and
-:func:`_record_arrays_py` are the reference walk and gather, and the fallback when the extension
-is not built; tests hold the two to the same offsets, arrays and errors.
+there too (``frame_records``). :func:`_record_starts_py`, :func:`_record_arrays_py` and
+:func:`_frame_batch_py` are the reference walk, gather and framing, and the fallback when the
+extension is not built; tests hold each pair to the same offsets, arrays, bytes and errors.
 """
 
 from __future__ import annotations
@@ -216,7 +216,8 @@ def resolve_versions(files: list[tuple[pa.Array, pa.Array, np.ndarray]]) -> tupl
     With :mod:`._keysort` built, the records of all files are one array and its
     ``last_of_each`` sorts them byte-wise and keeps the last position of each run of equal keys
     (measured on the 915k records of four 10M-key benchmark partitions, three alternating runs:
-    0.32-0.37 CPU us per record by dictionary encoding, 0.23-0.26 by the sort); else :func:`_resolve_versions_dictionary`, the reference.
+    0.32-0.37 CPU us per record by dictionary encoding, 0.23-0.26 by the sort); else
+    :func:`_resolve_versions_dictionary`, the reference.
     """
     if not files or _keysort is None:
         return _resolve_versions_dictionary(files)
@@ -287,7 +288,8 @@ def _offsets(arr: pa.Array) -> tuple[np.ndarray, np.ndarray]:
 def _frame_batch(batch: pa.RecordBatch) -> bytes:
     """The records of one batch without the end marker: by the compiled ``frame_records`` of
     :mod:`._framing` when it is built, else :func:`_frame_batch_py` (the reference). Measured on
-    four 156k-row partitions of the 10M-key benchmark checkpoint: see the commit."""
+    four 156k-row partitions of the 10M-key benchmark checkpoint, four alternating runs:
+    0.67-0.76 CPU us per row with numpy, 0.022-0.025 compiled."""
     keys, values = batch.column("key"), batch.column("value")
     compiled = _framing is not None and all(
         (pa.types.is_binary(a.type) or pa.types.is_large_binary(a.type)) and not a.null_count for a in (keys, values)
