@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import contextlib
 import os
+import signal
 import subprocess
 import threading
 import time
@@ -41,6 +42,7 @@ class Measured:
     load_after: float
     stdout: str
     stderr: str
+    settled_s: float = 0.0  # seconds the child's process group outlived it (``run(settle=True)``)
 
 
 def _children() -> dict[int, list[int]]:
@@ -114,13 +116,40 @@ def shm_used_kb(path: str = "/dev/shm") -> int:
 SAMPLE_INTERVAL = 0.2
 
 
-def run(argv: list[str], env: dict[str, str] | None = None, cwd: str | None = None, interval: float = SAMPLE_INTERVAL) -> Measured:
+#: the longest wait for what a child left running (see ``settle`` in :func:`run`)
+SETTLE_TIMEOUT = 120.0
+
+
+def _wait_for_group(pgid: int, timeout: float) -> float:
+    """Seconds until no process of group ``pgid`` is left (at most ``timeout``; then the rest
+    is killed)."""
+    t0 = time.perf_counter()
+    while time.perf_counter() - t0 < timeout:
+        try:
+            os.killpg(pgid, 0)
+        except ProcessLookupError:
+            return time.perf_counter() - t0
+        time.sleep(0.1)
+    with contextlib.suppress(ProcessLookupError):
+        os.killpg(pgid, signal.SIGKILL)
+    return time.perf_counter() - t0
+
+
+def run(
+    argv: list[str], env: dict[str, str] | None = None, cwd: str | None = None, interval: float = SAMPLE_INTERVAL,
+    settle: bool = False,
+) -> Measured:
+    """Run ``argv`` to its end, sampling its memory. With ``settle`` the child gets a process
+    group of its own, and after it exits this waits until everything it started has exited too
+    (``settled_s``): the engine's JVM outlives its Python driver by a few seconds, and a case
+    measured while it shuts down runs on a busier machine (observed: the first case after an
+    engine run took 41-43 instead of 33-34 CPU s)."""
     out_path = f"/tmp/stateshift-bench-{os.getpid()}-{time.monotonic_ns()}"
     load_before = os.getloadavg()[0]
     try:
         with open(out_path + ".out", "wb") as out, open(out_path + ".err", "wb") as err:
             t0 = time.perf_counter()
-            proc = subprocess.Popen(argv, stdout=out, stderr=err, env=env, cwd=cwd)
+            proc = subprocess.Popen(argv, stdout=out, stderr=err, env=env, cwd=cwd, start_new_session=settle)
             peak = [0, 0, 0, 0]  # tree RSS, tree PSS, tmpfs growth, tree PSS + tmpfs growth
             shm_base = shm_used_kb()
             done = threading.Event()
@@ -140,6 +169,7 @@ def run(argv: list[str], env: dict[str, str] | None = None, cwd: str | None = No
             done.set()
             sampler.join()
             proc.returncode = os.waitstatus_to_exitcode(status)
+            settled = _wait_for_group(proc.pid, SETTLE_TIMEOUT) if settle else 0.0
         with open(out_path + ".out", encoding="utf-8", errors="replace") as f:
             stdout = f.read()
         with open(out_path + ".err", encoding="utf-8", errors="replace") as f:
@@ -162,4 +192,5 @@ def run(argv: list[str], env: dict[str, str] | None = None, cwd: str | None = No
         load_after=os.getloadavg()[0],
         stdout=stdout,
         stderr=stderr,
+        settled_s=settled,
     )

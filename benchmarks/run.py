@@ -244,12 +244,14 @@ def run_case(
 
 def run_engine(p: Params, scratch: Path) -> tuple[float | None, str]:
     src, _ = ensure_checkpoint(Params(p.keys, p.partitions, p.shape, "hdfs", p.deltas, p.seed), 1)
+    # settle: the tool's cases start only once the engine's JVM has exited too
     m = measure.run(_python() + ["-m", "benchmarks.engine_load", str(src), "--shape", p.shape,
-                                 "--scratch", str(scratch / "engine")], env=_env())
+                                 "--scratch", str(scratch / "engine")], env=_env(), settle=True)
     if m.returncode != 0:
         return None, f"engine run failed: {m.stderr.strip().splitlines()[-1] if m.stderr.strip() else m.returncode}"
     info = json.loads(m.stdout.strip().splitlines()[-1])
-    return float(info["load_s"]), info.get("note", "")
+    note = info.get("note", "")
+    return float(info["load_s"]), f"{note}; its JVM exited {m.settled_s:.1f} s after the driver" if note else note
 
 
 # ------------------------------------------------------------------------ report
