@@ -70,7 +70,8 @@ open_binary(binary_t *b, PyObject *offsets, PyObject *data, Py_ssize_t offset, i
     }
     b->have_dv = 1;
     int64_t width = large ? 8 : 4;
-    if ((int64_t)b->ov.len / width < (int64_t)offset + count + 1) {
+    int64_t have = (int64_t)b->ov.len / width;  /* offsets in the buffer; offset, count >= 0 */
+    if ((int64_t)offset >= have || count > have - (int64_t)offset - 1) {  /* no overflow: all terms <= have */
         PyErr_Format(PyExc_ValueError, "the %s offsets buffer is shorter than the slice needs", what);
         release_binary(b);
         return -1;

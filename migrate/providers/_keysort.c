@@ -264,7 +264,8 @@ sorted_items(PyObject *args, const char *fname, Py_buffer *ov, Py_buffer *dv, vo
     k->data = (const unsigned char *)dv->buf;
     k->o32 = NULL;
     k->o64 = NULL;
-    if (((int64_t)ov->len) / width < (int64_t)offset + *n + 1) {
+    int64_t have = (int64_t)ov->len / width;  /* offsets in the buffer; offset, count >= 0 */
+    if ((int64_t)offset >= have || *n > have - (int64_t)offset - 1) {  /* no overflow: all terms <= have */
         PyErr_SetString(PyExc_ValueError, "the offsets buffer is shorter than the array's slice needs");
         goto fail;
     }

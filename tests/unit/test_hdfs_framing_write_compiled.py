@@ -128,6 +128,9 @@ def test_offsets_that_describe_no_array_are_refused(framing: ModuleType, key_off
         framing.frame_records(np.array(key_offsets, np.int32).tobytes(), b"abcd", 0, False, voffsets, vdata, 0, False, count)
     with pytest.raises(ValueError, match="value offset must not be negative"):
         framing.frame_records(np.array([0, 1, 2], np.int32).tobytes(), b"ab", 0, False, voffsets, vdata, -1, False, 2)
+    for offset, huge in ((2**62, 2**62), (0, 2**63 - 1)):  # offset + count would overflow int64
+        with pytest.raises(ValueError, match="key offsets buffer is shorter"):
+            framing.frame_records(np.array([0, 1, 2], np.int32).tobytes(), b"ab", offset, False, voffsets, vdata, 0, False, huge)
 
 
 def test_an_element_of_2_gib_is_refused_without_touching_it(framing: ModuleType) -> None:

@@ -134,6 +134,8 @@ def test_unaligned_offsets_are_read_right(keysort: ModuleType) -> None:
         (np.array([0, 2], np.int32), b"abcd", 0, 2, "shorter"),  # too few offsets
         (np.array([0, 2], np.int32), b"abcd", 1, 1, "shorter"),  # slice past the offsets
         (np.array([0, 2], np.int32), b"abcd", -1, 1, "negative"),
+        (np.array([0, 2], np.int32), b"abcd", 2**62, 2**62, "shorter"),  # offset + count would overflow int64
+        (np.array([0, 2], np.int32), b"abcd", 0, 2**63 - 1, "shorter"),
     ],
 )
 def test_offsets_that_describe_no_array_are_refused(keysort: ModuleType, offsets, data, offset, count, message) -> None:
