@@ -8,12 +8,12 @@ the dictionary-encoding replay in hdfs.py and the numpy digest in migrate/digest
 
 from setuptools import Extension, setup
 
-BINARY_H = "migrate/providers/_binary.h"  # shared by two extensions; `depends` also puts it in the sdist
+BINARY_H = "migrate/providers/_binary.h"  # shared by the extensions; `depends` also puts it in the sdist
 
 setup(
     ext_modules=[
         Extension("migrate.providers._framing", ["migrate/providers/_framing.c"], depends=[BINARY_H], optional=True),
-        Extension("migrate.providers._keysort", ["migrate/providers/_keysort.c"], optional=True),
+        Extension("migrate.providers._keysort", ["migrate/providers/_keysort.c"], depends=[BINARY_H], optional=True),
         Extension("migrate._digest", ["migrate/_digest.c"], depends=[BINARY_H], optional=True),
     ]
 )

@@ -85,25 +85,13 @@ PyDoc_STRVAR(digest_rows_doc,
 static PyObject *
 digest_rows(PyObject *module, PyObject *args)
 {
-    PyObject *ko, *kd, *vo, *vd;
-    Py_ssize_t koffset, voffset, count;
-    int klarge, vlarge;
+    Py_ssize_t count;
     binary_t keys, values;
     int64_t key_bytes = 0, value_bytes = 0;
 
     (void)module;
-    if (!PyArg_ParseTuple(args, "OOnpOOnpn:digest_rows", &ko, &kd, &koffset, &klarge, &vo, &vd, &voffset, &vlarge, &count))
+    if (open_rows(args, "OOnpOOnpn:digest_rows", &keys, &values, &count, &key_bytes, &value_bytes) < 0)
         return NULL;
-    if (count < 0) {
-        PyErr_SetString(PyExc_ValueError, "count must not be negative");
-        return NULL;
-    }
-    if (open_binary(&keys, ko, kd, koffset, klarge, (int64_t)count, &key_bytes, "key") < 0)
-        return NULL;
-    if (open_binary(&values, vo, vd, voffset, vlarge, (int64_t)count, &value_bytes, "value") < 0) {
-        release_binary(&keys);
-        return NULL;
-    }
     uint64_t lane[2] = {0, 0};
     const unsigned char *kdata = (const unsigned char *)keys.dv.buf, *vdata = (const unsigned char *)values.dv.buf;
     Py_BEGIN_ALLOW_THREADS

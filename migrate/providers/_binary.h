@@ -1,4 +1,4 @@
-/* Shared by the compiled helpers (_framing.c, ../_digest.c): one Arrow binary array's offsets
+/* Shared by the compiled helpers (_framing.c, _keysort.c, ../_digest.c): one Arrow binary array's offsets
  * and data buffers, exported through the buffer protocol and checked before any use.
  *
  * open_binary checks every offset of the array's slice in 64-bit arithmetic (from 0 or more,
@@ -91,6 +91,32 @@ open_binary(binary_t *b, PyObject *offsets, PyObject *data, Py_ssize_t offset, i
         return -1;
     }
     *bytes = prev - offset_at(b, 0);
+    return 0;
+}
+
+/* Parse the arguments (key_offsets, keys, key_offset, keys_large, value_offsets, values,
+ * value_offset, values_large, count) with `format` ("OOnpOOnpn:<name>") and open both arrays'
+ * slices of count rows. On failure an exception is set, nothing is left exported, and -1 is
+ * returned; release both with release_binary. */
+static inline int
+open_rows(PyObject *args, const char *format, binary_t *keys, binary_t *values, Py_ssize_t *count,
+          int64_t *key_bytes, int64_t *value_bytes)
+{
+    PyObject *ko, *kd, *vo, *vd;
+    Py_ssize_t koffset, voffset;
+    int klarge, vlarge;
+    if (!PyArg_ParseTuple(args, format, &ko, &kd, &koffset, &klarge, &vo, &vd, &voffset, &vlarge, count))
+        return -1;
+    if (*count < 0) {
+        PyErr_SetString(PyExc_ValueError, "count must not be negative");
+        return -1;
+    }
+    if (open_binary(keys, ko, kd, koffset, klarge, (int64_t)*count, key_bytes, "key") < 0)
+        return -1;
+    if (open_binary(values, vo, vd, voffset, vlarge, (int64_t)*count, value_bytes, "value") < 0) {
+        release_binary(keys);
+        return -1;
+    }
     return 0;
 }
 

@@ -333,25 +333,13 @@ PyDoc_STRVAR(frame_records_doc,
 static PyObject *
 frame_records(PyObject *module, PyObject *args)
 {
-    PyObject *ko, *kd, *vo, *vd;
-    Py_ssize_t koffset, voffset, count;
-    int klarge, vlarge;
+    Py_ssize_t count;
     binary_t keys, values;
     int64_t key_bytes = 0, value_bytes = 0;
 
     (void)module;
-    if (!PyArg_ParseTuple(args, "OOnpOOnpn:frame_records", &ko, &kd, &koffset, &klarge, &vo, &vd, &voffset, &vlarge, &count))
+    if (open_rows(args, "OOnpOOnpn:frame_records", &keys, &values, &count, &key_bytes, &value_bytes) < 0)
         return NULL;
-    if (count < 0) {
-        PyErr_SetString(PyExc_ValueError, "count must not be negative");
-        return NULL;
-    }
-    if (open_binary(&keys, ko, kd, koffset, klarge, (int64_t)count, &key_bytes, "key") < 0)
-        return NULL;
-    if (open_binary(&values, vo, vd, voffset, vlarge, (int64_t)count, &value_bytes, "value") < 0) {
-        release_binary(&keys);
-        return NULL;
-    }
     /* each sum is within its data buffer, and count <= each offsets buffer's length / 4 */
     PyObject *out = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(8 * (int64_t)count + key_bytes + value_bytes));
     if (out != NULL) {

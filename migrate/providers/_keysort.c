@@ -15,8 +15,8 @@
  *     checks). Returns the int64 positions 0..count-1 in byte-wise order of their keys, in native
  *     byte order (Python reads it with numpy.frombuffer or as an Arrow int64 buffer). Equal keys
  *     are adjacent, in no particular order. Raises ValueError when the offsets are not those of
- *     a valid array over the data (decreasing, negative, past the end, buffer too short), before
- *     sorting anything.
+ *     a valid array over the data (decreasing, negative, past the end, buffer too short, an
+ *     element of 2**31 bytes or more: open_binary in _binary.h), before sorting anything.
  *
  * last_of_each(offsets, data, offset, count, large) -> bytes
  *     The same arguments and checks. Returns the int64 position of the last occurrence of each
@@ -36,7 +36,8 @@
  * bytes of the keys.
  *
  * Bounds: the offsets are all checked against the data's length before the sort, in 64-bit
- * arithmetic, and every read of a key stays within its [start, end). The sort runs without the
+ * arithmetic (open_binary, shared with _framing.c and _digest.c), and every read of a key stays
+ * within its [start, end). The sort runs without the
  * GIL: it touches only the exported buffers and memory of its own (see _framing.c on why the
  * exported memory stays valid).
  */
@@ -46,6 +47,8 @@
 
 #include <stdint.h>
 #include <string.h>
+
+#include "_binary.h"
 
 #define SMALL_GROUP 32
 
@@ -58,22 +61,25 @@ typedef struct {
     int64_t lo, hi, depth;
 } group_t;
 
-typedef struct {
-    const unsigned char *data;
-    const int32_t *o32;  /* offsets, already moved to the array's slice; one of the two is set */
-    const int64_t *o64;
-} keys_t;
+/* The keys are one Arrow binary array, exported and checked by open_binary (_binary.h). */
+typedef binary_t keys_t;
 
 static inline int64_t
 key_start(const keys_t *k, int64_t pos)
 {
-    return k->o64 ? k->o64[pos] : (int64_t)k->o32[pos];
+    return offset_at(k, pos);
 }
 
 static inline int64_t
 key_end(const keys_t *k, int64_t pos)
 {
-    return k->o64 ? k->o64[pos + 1] : (int64_t)k->o32[pos + 1];
+    return offset_at(k, pos + 1);
+}
+
+static inline const unsigned char *
+key_data(const keys_t *k)
+{
+    return (const unsigned char *)k->dv.buf;
 }
 
 /* Bytes [depth, depth + 8) of the key as a big-endian number, zero past its end. */
@@ -82,7 +88,7 @@ chunk_at(const keys_t *k, int64_t pos, int64_t depth)
 {
     int64_t start = key_start(k, pos) + depth, end = key_end(k, pos);
     int64_t have = end - start;
-    const unsigned char *p = k->data + start;
+    const unsigned char *p = key_data(k) + start;
     uint64_t c = 0;
     if (have >= 8) {
         for (int j = 0; j < 8; j++)
@@ -101,7 +107,7 @@ compare_from(const keys_t *k, int64_t a, int64_t b, int64_t depth)
     int64_t sa = key_start(k, a) + depth, sb = key_start(k, b) + depth;
     int64_t la = key_end(k, a) - sa, lb = key_end(k, b) - sb;
     int64_t m = la < lb ? la : lb;
-    int c = m > 0 ? memcmp(k->data + sa, k->data + sb, (size_t)m) : 0;
+    int c = m > 0 ? memcmp(key_data(k) + sa, key_data(k) + sb, (size_t)m) : 0;
     if (c)
         return c;
     return (la > lb) - (la < lb);
@@ -232,106 +238,59 @@ sort_keys(const keys_t *k, item_t *items, item_t *t, int64_t n)
     return 0;
 }
 
-/* Parse (offsets, data, offset, count, large), check the offsets and sort the positions.
- * On success returns the sorted items (count in *n; free with PyMem_RawFree) and leaves the
- * buffers exported in *ov, *dv and a possible aligned copy in *aligned for the caller to release
- * with release_sorted; on failure returns NULL with an exception set and nothing held. */
+/* Parse (offsets, data, offset, count, large) with `format`, open and check the array
+ * (open_binary) and sort its positions. On success returns the sorted items (k->... holds the
+ * exported array, count in *n) for release_sorted; on failure returns NULL with an exception set
+ * and nothing held. */
 static item_t *
-sorted_items(PyObject *args, const char *fname, Py_buffer *ov, Py_buffer *dv, void **aligned, keys_t *k, int64_t *n)
+sorted_items(PyObject *args, const char *format, keys_t *k, int64_t *n)
 {
     PyObject *offsets_obj, *data_obj;
     Py_ssize_t offset, count;
     int large;
-    char format[32];
-    PyOS_snprintf(format, sizeof(format), "OOnnp:%s", fname);
-    *aligned = NULL;
+    int64_t bytes;
     if (!PyArg_ParseTuple(args, format, &offsets_obj, &data_obj, &offset, &count, &large))
         return NULL;
-    if (offset < 0 || count < 0) {
-        PyErr_SetString(PyExc_ValueError, "offset and count must not be negative");
+    if (count < 0) {
+        PyErr_SetString(PyExc_ValueError, "count must not be negative");
         return NULL;
     }
-    if (PyObject_GetBuffer(offsets_obj, ov, PyBUF_C_CONTIGUOUS) < 0)
+    if (open_binary(k, offsets_obj, data_obj, offset, large, (int64_t)count, &bytes, "key") < 0)
         return NULL;
-    if (PyObject_GetBuffer(data_obj, dv, PyBUF_C_CONTIGUOUS) < 0) {
-        PyBuffer_Release(ov);
-        return NULL;
-    }
-    item_t *items = NULL, *t = NULL;
-    int failed = 0;
-    int64_t width = large ? 8 : 4;
     *n = (int64_t)count;
-    k->data = (const unsigned char *)dv->buf;
-    k->o32 = NULL;
-    k->o64 = NULL;
-    int64_t have = (int64_t)ov->len / width;  /* offsets in the buffer; offset, count >= 0 */
-    if ((int64_t)offset >= have || *n > have - (int64_t)offset - 1) {  /* no overflow: all terms <= have */
-        PyErr_SetString(PyExc_ValueError, "the offsets buffer is shorter than the array's slice needs");
-        goto fail;
+    item_t *items = PyMem_RawMalloc((size_t)(*n ? *n : 1) * sizeof(item_t));
+    item_t *t = PyMem_RawMalloc((size_t)(*n ? *n : 1) * sizeof(item_t));
+    int failed = items == NULL || t == NULL;
+    if (!failed) {
+        for (int64_t i = 0; i < *n; i++)
+            items[i].pos = i;
+        Py_BEGIN_ALLOW_THREADS
+        failed = sort_keys(k, items, t, *n);
+        Py_END_ALLOW_THREADS
     }
-    const char *obase = (const char *)ov->buf + (int64_t)offset * width;
-    if (((uintptr_t)obase) % (uintptr_t)width) {  /* offsets not aligned for their width: a copy */
-        *aligned = PyMem_Malloc((size_t)(*n + 1) * (size_t)width);
-        if (*aligned == NULL) {
-            PyErr_NoMemory();
-            goto fail;
-        }
-        memcpy(*aligned, obase, (size_t)(*n + 1) * (size_t)width);
-        obase = *aligned;
-    }
-    if (large)
-        k->o64 = (const int64_t *)obase;
-    else
-        k->o32 = (const int32_t *)obase;
-    {
-        int64_t prev = key_start(k, 0);
-        int bad = prev < 0;
-        for (int64_t i = 1; i <= *n && !bad; i++) {
-            int64_t o = key_start(k, i);
-            bad = o < prev;
-            prev = o;
-        }
-        if (bad || prev > (int64_t)dv->len) {
-            PyErr_SetString(PyExc_ValueError, "the offsets are not those of a binary array over the data");
-            goto fail;
-        }
-    }
-    items = PyMem_RawMalloc((size_t)(*n ? *n : 1) * sizeof(item_t));
-    t = PyMem_RawMalloc((size_t)(*n ? *n : 1) * sizeof(item_t));
-    if (items == NULL || t == NULL) {
-        PyErr_NoMemory();
-        goto fail;
-    }
-    for (int64_t i = 0; i < *n; i++)
-        items[i].pos = i;
-    Py_BEGIN_ALLOW_THREADS
-    failed = sort_keys(k, items, t, *n);
-    Py_END_ALLOW_THREADS
     PyMem_RawFree(t);
     if (failed) {
         PyErr_NoMemory();
         PyMem_RawFree(items);
-        t = items = NULL;
-        goto fail;
+        release_binary(k);
+        return NULL;
     }
     return items;
-fail:
-    PyMem_RawFree(items);
-    PyMem_RawFree(t);
-    PyMem_Free(*aligned);
-    *aligned = NULL;
-    PyBuffer_Release(dv);
-    PyBuffer_Release(ov);
-    return NULL;
 }
 
-static void
-release_sorted(item_t *items, Py_buffer *ov, Py_buffer *dv, void *aligned)
+/* The positions of items[0..n) as a bytes object of int64, and everything released. */
+static PyObject *
+positions(item_t *items, int64_t n, keys_t *k)
 {
+    PyObject *result = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(n * 8));
+    if (result != NULL) {
+        int64_t *out = (int64_t *)PyBytes_AS_STRING(result);
+        for (int64_t i = 0; i < n; i++)
+            out[i] = items[i].pos;
+    }
     PyMem_RawFree(items);
-    PyMem_Free(aligned);
-    PyBuffer_Release(dv);
-    PyBuffer_Release(ov);
+    release_binary(k);
+    return result;
 }
 
 PyDoc_STRVAR(byte_order_doc,
@@ -342,21 +301,10 @@ static PyObject *
 byte_order(PyObject *self, PyObject *args)
 {
     (void)self;
-    Py_buffer ov, dv;
-    void *aligned;
     keys_t k;
     int64_t n;
-    item_t *items = sorted_items(args, "byte_order", &ov, &dv, &aligned, &k, &n);
-    if (items == NULL)
-        return NULL;
-    PyObject *result = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(n * 8));
-    if (result != NULL) {
-        int64_t *out = (int64_t *)PyBytes_AS_STRING(result);
-        for (int64_t i = 0; i < n; i++)
-            out[i] = items[i].pos;
-    }
-    release_sorted(items, &ov, &dv, aligned);
-    return result;
+    item_t *items = sorted_items(args, "OOnnp:byte_order", &k, &n);
+    return items == NULL ? NULL : positions(items, n, &k);
 }
 
 PyDoc_STRVAR(last_of_each_doc,
@@ -368,11 +316,9 @@ static PyObject *
 last_of_each(PyObject *self, PyObject *args)
 {
     (void)self;
-    Py_buffer ov, dv;
-    void *aligned;
     keys_t k;
     int64_t n;
-    item_t *items = sorted_items(args, "last_of_each", &ov, &dv, &aligned, &k, &n);
+    item_t *items = sorted_items(args, "OOnnp:last_of_each", &k, &n);
     if (items == NULL)
         return NULL;
     int64_t distinct = 0;
@@ -390,14 +336,7 @@ last_of_each(PyObject *self, PyObject *args)
         i = j;
     }
     Py_END_ALLOW_THREADS
-    PyObject *result = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(distinct * 8));
-    if (result != NULL) {
-        int64_t *out = (int64_t *)PyBytes_AS_STRING(result);
-        for (int64_t i = 0; i < distinct; i++)
-            out[i] = items[i].pos;
-    }
-    release_sorted(items, &ov, &dv, aligned);
-    return result;
+    return positions(items, distinct, &k);
 }
 
 static PyMethodDef keysort_methods[] = {
