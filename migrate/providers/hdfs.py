@@ -29,13 +29,14 @@ from __future__ import annotations
 
 import re
 import struct
-from collections.abc import Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from typing import NoReturn
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from ..buffers import binary_args, plain_binary
 from ..codecs import codec_for, codec_of_stream
 from ..codecs.hadoop_crc import crc_name, make_crc, verify_crc
 from ..errors import CorruptInput, Unsupported
@@ -219,51 +220,54 @@ def resolve_versions(files: list[tuple[pa.Array, pa.Array, np.ndarray]]) -> tupl
     0.32-0.37 CPU us per record by dictionary encoding, 0.23-0.26 by the sort); else
     :func:`_resolve_versions_dictionary`, the reference.
     """
-    if not files or _keysort is None:
-        return _resolve_versions_dictionary(files)
+    return _resolve(files, _last_writes_dictionary if _keysort is None else _last_writes_sorted)
+
+
+def _resolve_versions_dictionary(files: list[tuple[pa.Array, pa.Array, np.ndarray]]) -> tuple[pa.Array, pa.Array]:
+    """:func:`resolve_versions` without the compiled sort, and its reference."""
+    return _resolve(files, _last_writes_dictionary)
+
+
+def _resolve(
+    files: list[tuple[pa.Array, pa.Array, np.ndarray]], last_writes: Callable[[pa.Array], np.ndarray]
+) -> tuple[pa.Array, pa.Array]:
+    """The replay with ``last_writes`` (the position of each distinct key's last record, in any
+    order) over the records of all files as one array."""
+    if not files:
+        return pa.array([], pa.binary()), pa.array([], pa.binary())
     key_type = pa.large_binary() if any(pa.types.is_large_binary(f[0].type) for f in files) else pa.binary()
     keys = pa.chunked_array([f[0].cast(key_type) for f in files], key_type).combine_chunks()
     values = pa.chunked_array([f[1].cast(key_type) for f in files], key_type).combine_chunks()
     removed = np.concatenate([f[2] for f in files])
-    _, offsets, data = keys.buffers()
-    last = np.frombuffer(
-        _keysort.last_of_each(offsets, data if data is not None else b"", keys.offset, len(keys), key_type == pa.large_binary()),
-        dtype=np.int64,
-    )
+    last = last_writes(keys)
     if len(last) == len(removed) and not removed.any():  # nothing overwritten, nothing removed
         return keys, values
-    order = pa.array(np.sort(last[~removed[last]]))
+    order = pa.array(np.sort(last[~removed[last]]))  # the survivors, in file order
     return keys.take(order), values.take(order)
 
 
-def _resolve_versions_dictionary(files: list[tuple[pa.Array, pa.Array, np.ndarray]]) -> tuple[pa.Array, pa.Array]:
-    """:func:`resolve_versions` without the compiled sort, and its reference.
+def _last_writes_sorted(keys: pa.Array) -> np.ndarray:
+    """By the compiled sort: ``_keysort.last_of_each``."""
+    offsets, data, offset, large = binary_args(keys)
+    return np.frombuffer(_keysort.last_of_each(offsets, data, offset, len(keys), large), dtype=np.int64)
 
-    The records are numbered newest first and dictionary-encoded: a key's id is the order of its
-    first appearance there, so the record where the running maximum of the ids grows is the
-    newest write of a new key. Those records, minus removals, are gathered in file order (a
-    deterministic output). One hash pass (Arrow's dictionary encoding) and whole-array numpy;
-    measured against the hash aggregation it replaces (``Table.group_by``) on one 10M-key
-    benchmark partition, each in a fresh process: the same CPU time (86-104 vs 97-106 ms) and
-    18 MB less peak memory; and no ``pyarrow.acero``, whose import brings ``pyarrow.dataset``.
+
+def _last_writes_dictionary(keys: pa.Array) -> np.ndarray:
+    """By dictionary encoding, the reference. The records are numbered newest first and
+    dictionary-encoded: a key's id is the order of its first appearance there, so the record where
+    the running maximum of the ids grows is the newest write of a new key. One hash pass (Arrow's
+    dictionary encoding) and whole-array numpy; measured against the hash aggregation it replaced
+    (``Table.group_by``) on one 10M-key benchmark partition, each in a fresh process: the same
+    CPU time (86-104 vs 97-106 ms) and 18 MB less peak memory; and no ``pyarrow.acero``, whose
+    import brings ``pyarrow.dataset``.
     """
-    if not files:
-        return pa.array([], pa.binary()), pa.array([], pa.binary())
-    key_type = pa.large_binary() if any(pa.types.is_large_binary(f[0].type) for f in files) else pa.binary()
-    keys = pa.chunked_array([f[0].cast(key_type) for f in files], key_type)
-    values = pa.chunked_array([f[1].cast(key_type) for f in files], key_type)
-    removed = np.concatenate([f[2] for f in files])
-    total = len(removed)
-    newest_first = keys.take(pa.array(np.arange(total - 1, -1, -1, dtype=np.int64))).combine_chunks()
-    encoded = pc.dictionary_encode(newest_first)  # one array, one memo table: ids 0, 1, 2... by first appearance
-    if len(encoded.dictionary) == total and not removed.any():  # nothing overwritten, nothing removed
-        return keys.combine_chunks(), values.combine_chunks()
+    total = len(keys)
+    encoded = pc.dictionary_encode(keys.take(pa.array(np.arange(total - 1, -1, -1, dtype=np.int64))))
+    if len(encoded.dictionary) == total:  # every key once
+        return np.arange(total, dtype=np.int64)
     ids = encoded.indices.to_numpy()
-    del newest_first, encoded
     newest = np.flatnonzero(np.diff(np.maximum.accumulate(ids), prepend=-1) > 0)  # first appearances
-    last = (total - 1) - newest  # as positions in file order
-    order = pa.array(np.sort(last[~removed[last]]))
-    return keys.take(order).combine_chunks(), values.take(order).combine_chunks()
+    return (total - 1) - newest  # as positions in file order
 
 
 def frame_records(batches: Iterable[pa.RecordBatch]) -> bytes:
@@ -291,16 +295,9 @@ def _frame_batch(batch: pa.RecordBatch) -> bytes:
     four 156k-row partitions of the 10M-key benchmark checkpoint, four alternating runs:
     0.67-0.76 CPU us per row with numpy, 0.022-0.025 compiled."""
     keys, values = batch.column("key"), batch.column("value")
-    compiled = _framing is not None and all(
-        (pa.types.is_binary(a.type) or pa.types.is_large_binary(a.type)) and not a.null_count for a in (keys, values)
-    )
-    if not compiled:
+    if _framing is None or not (plain_binary(keys) and plain_binary(values)):
         return _frame_batch_py(batch)
-    parts = []
-    for arr in (keys, values):
-        _, offsets, data = arr.buffers()
-        parts += [offsets, data if data is not None else b"", arr.offset, pa.types.is_large_binary(arr.type)]
-    return _framing.frame_records(*parts, batch.num_rows)
+    return _framing.frame_records(*binary_args(keys), *binary_args(values), batch.num_rows)
 
 
 def _frame_batch_py(batch: pa.RecordBatch) -> bytes:
