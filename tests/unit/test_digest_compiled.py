@@ -10,8 +10,6 @@ test_hdfs_framing_compiled.py).
 
 from __future__ import annotations
 
-import importlib
-import os
 import random
 from types import ModuleType
 
@@ -20,6 +18,7 @@ import pyarrow as pa
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from compiled_extensions import load
 from test_digest_order_and_sensitivity import reference  # the plain-Python reference of the algorithm
 
 from migrate import digest
@@ -28,13 +27,7 @@ from migrate.digest import Digest, digest_batch, digest_batch_numpy
 
 @pytest.fixture(scope="module")
 def compiled() -> ModuleType:
-    try:
-        return importlib.import_module("migrate._digest")
-    except ImportError as exc:
-        reason = f"the compiled digest migrate._digest is not built ({exc}); `pip install -e .` builds it"
-        if os.environ.get("CI") == "true":
-            pytest.fail(f"{reason}, and CI=true", pytrace=False)
-        pytest.skip(reason)
+    return load("migrate._digest", "the compiled digest")
 
 
 def _batch(rows, key_type=pa.binary(), value_type=pa.binary()) -> pa.RecordBatch:

@@ -6,23 +6,12 @@ import random
 import pyarrow as pa
 import pytest
 
-from migrate import digest
 from migrate.digest import _COLUMN_WORDS, digest_batch, digest_batches
-
-
-@pytest.fixture(autouse=True, scope="module", params=["compiled", "numpy"])
-def implementation(request):
-    """Every test here runs against the compiled digest (when built) and the numpy digest."""
-    saved = digest._compiled
-    if request.param == "numpy":
-        digest._compiled = None
-    elif saved is None:
-        pytest.skip("migrate._digest is not built (test_digest_compiled.py fails that under CI=true)")
-    yield request.param
-    digest._compiled = saved
 from migrate.providers.base import ROW_SCHEMA
 
-from test_digest_order_and_sensitivity import reference  # the plain-Python reference of the algorithm
+# the plain-Python reference of the algorithm, and the autouse fixture that runs every test here
+# against both the compiled and the numpy digest
+from test_digest_order_and_sensitivity import implementation, reference  # noqa: F401
 
 
 def _batch(rows):

@@ -16,9 +16,7 @@ and S3 tests follow in the conftest files).
 
 from __future__ import annotations
 
-import importlib
 import mmap
-import os
 import random
 import struct
 import subprocess
@@ -32,6 +30,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from compiled_extensions import load
 from migrate.codecs import codec_of_stream
 from migrate.errors import CorruptInput
 from migrate.providers import hdfs
@@ -43,23 +42,9 @@ END = struct.pack(">i", -1)
 INT32_MIN, INT32_MAX = -(2**31), 2**31 - 1
 
 
-def _load_extension() -> ModuleType:
-    """The extension module; a skip on a developer machine, a failure under CI=true, when missing."""
-    try:
-        return importlib.import_module("migrate.providers._framing")
-    except ImportError as exc:
-        reason = (
-            f"the compiled record walk migrate.providers._framing is not built ({exc}); "
-            "`pip install -e .` builds it when a C compiler and the Python headers are there"
-        )
-        if os.environ.get("CI") == "true":
-            pytest.fail(f"{reason}, and CI=true", pytrace=False)
-        pytest.skip(reason)
-
-
 @pytest.fixture(scope="module")
 def framing() -> ModuleType:
-    return _load_extension()
+    return load("migrate.providers._framing", "the compiled record walk")
 
 
 def test_extension_is_built_and_used(framing: ModuleType) -> None:

@@ -14,9 +14,7 @@ test_hdfs_framing_compiled.py).
 
 from __future__ import annotations
 
-import importlib
 import mmap
-import os
 import struct
 import sys
 from pathlib import Path
@@ -28,6 +26,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from compiled_extensions import load
 from migrate.codecs import codec_of_stream
 from migrate.providers import hdfs
 from migrate.providers.base import ROW_SCHEMA
@@ -38,16 +37,7 @@ FIXTURES = Path(__file__).resolve().parents[1] / "fixtures"
 
 @pytest.fixture(scope="module")
 def framing() -> ModuleType:
-    try:
-        return importlib.import_module("migrate.providers._framing")
-    except ImportError as exc:
-        reason = (
-            f"the compiled framing migrate.providers._framing is not built ({exc}); "
-            "`pip install -e .` builds it when a C compiler and the Python headers are there"
-        )
-        if os.environ.get("CI") == "true":
-            pytest.fail(f"{reason}, and CI=true", pytrace=False)
-        pytest.skip(reason)
+    return load("migrate.providers._framing", "the compiled framing")
 
 
 def _batch(rows: list[tuple[bytes, bytes]], key_type: pa.DataType = pa.binary(), value_type: pa.DataType = pa.binary()) -> pa.RecordBatch:

@@ -16,8 +16,6 @@ test_hdfs_framing_compiled.py).
 
 from __future__ import annotations
 
-import importlib
-import os
 import random
 import struct
 from types import ModuleType
@@ -29,22 +27,14 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from compiled_extensions import load
 from migrate.providers import rocksdb_db
 from migrate.providers.rocksdb_db import byte_order
 
 
 @pytest.fixture(scope="module")
 def keysort() -> ModuleType:
-    try:
-        return importlib.import_module("migrate.providers._keysort")
-    except ImportError as exc:
-        reason = (
-            f"the compiled key sort migrate.providers._keysort is not built ({exc}); "
-            "`pip install -e .` builds it when a C compiler and the Python headers are there"
-        )
-        if os.environ.get("CI") == "true":
-            pytest.fail(f"{reason}, and CI=true", pytrace=False)
-        pytest.skip(reason)
+    return load("migrate.providers._keysort", "the compiled key sort")
 
 
 def assert_byte_order(keys: list[bytes], binary: pa.DataType = pa.binary()) -> None:
