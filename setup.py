@@ -3,7 +3,8 @@
 The extensions are optional: when they cannot be compiled (no C compiler, no Python headers) the
 install still succeeds and the tool uses the Python (numpy, Arrow) reference of each: the walk,
 gather and framing in migrate/providers/hdfs.py, Arrow's sort in migrate/providers/rocksdb_db.py,
-the dictionary-encoding replay in hdfs.py and the numpy digest in migrate/digest.py.
+the dictionary-encoding replay in hdfs.py, the numpy digest in migrate/digest.py and the Python
+per-chunk CRC loop in migrate/codecs/hadoop_crc.py (whose helper also needs zlib's headers).
 """
 
 from setuptools import Extension, setup
@@ -15,5 +16,6 @@ setup(
         Extension("migrate.providers._framing", ["migrate/providers/_framing.c"], depends=[BINARY_H], optional=True),
         Extension("migrate.providers._keysort", ["migrate/providers/_keysort.c"], depends=[BINARY_H], optional=True),
         Extension("migrate._digest", ["migrate/_digest.c"], depends=[BINARY_H], optional=True),
+        Extension("migrate.codecs._chunkcrc", ["migrate/codecs/_chunkcrc.c"], libraries=["z"], optional=True),
     ]
 )

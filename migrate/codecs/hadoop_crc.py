@@ -13,8 +13,10 @@ The engine does not check sidecars on its own state reads (its FileContext path 
 system; observed), but Hadoop's FileSystem reader does, so a rewritten file needs a fresh sidecar
 (or none: from memory, a missing sidecar is not an error for either reader).
 
-The per-chunk loop runs in C (``map`` of ``zlib.crc32`` over memoryview slices): measured ~0.7 GB/s
-on a 64 MiB buffer here, ten times faster than a numpy table-driven CRC over all chunks at once.
+The per-chunk loop runs in the compiled helper ``_chunkcrc`` (zlib's crc32 per slice, without the
+GIL) when it is built: measured 0.46 -> 1.7 GB/s on a 64 MiB buffer. :func:`chunk_crcs_py`
+(``map`` of ``zlib.crc32`` over memoryview slices, itself ten times faster than a numpy
+table-driven CRC over all chunks at once) is the reference and the fallback.
 """
 
 from __future__ import annotations
@@ -26,6 +28,11 @@ import zlib
 from array import array
 
 from ..errors import CorruptInput
+
+try:  # the compiled per-chunk loop (setup.py builds it when a C compiler and zlib's headers are there)
+    from . import _chunkcrc
+except ImportError:  # not built: the Python loop below
+    _chunkcrc = None
 
 MAGIC = b"crc\x00"
 if array("I").itemsize != 4:  # pragma: no cover - never: "I" is 4 bytes wherever CPython runs here
@@ -44,6 +51,13 @@ def crc_name(filename: str) -> str:
 
 def chunk_crcs(data: bytes, bytes_per_checksum: int = DEFAULT_BYTES_PER_CHECKSUM) -> bytes:
     """The big-endian CRC-32 of every ``bytes_per_checksum`` slice of ``data``, concatenated."""
+    if _chunkcrc is None:
+        return chunk_crcs_py(data, bytes_per_checksum)
+    return _chunkcrc.chunk_crcs(data, bytes_per_checksum)
+
+
+def chunk_crcs_py(data: bytes, bytes_per_checksum: int = DEFAULT_BYTES_PER_CHECKSUM) -> bytes:
+    """:func:`chunk_crcs` in Python: the reference of the compiled loop, and its fallback."""
     if bytes_per_checksum <= 0:
         raise ValueError(f"bytes per checksum must be positive, got {bytes_per_checksum}")
     view = memoryview(data)
