@@ -4,11 +4,19 @@ It records who the target is being built from (identity) and, per finished store
 source digest and the files written. ``--resume`` trusts nothing in it blindly: each recorded
 partition is read back from the target and its digest compared with the recorded source digest
 before it is skipped. The journal is deleted once the target is published.
+
+The journal is one file, rewritten whole: after the first finished partition, then at most once
+every :data:`SAVE_EVERY_S` seconds, and once more when the partitions are done (or fail).
+Rewriting it after every partition cost time quadratic in the partition count (measured: 0.40 of
+5.6 CPU s of a 256-partition convert with 100 keys per partition). A run killed between two
+saves loses at most those seconds of partitions: ``--resume`` does them again.
 """
 
 from __future__ import annotations
 
+import contextlib
 import json
+import time
 from collections.abc import Callable
 from typing import Any, Protocol, TypeVar
 
@@ -42,6 +50,7 @@ def result_key(r: Outcome) -> str:
     return key(r.operator_id, r.store_name, r.partition)
 
 JOURNAL = f"{JOURNAL_DIR}/journal.json"
+SAVE_EVERY_S = 1.0
 
 
 def key(operator_id: int, store: str, partition: int) -> str:
@@ -124,13 +133,28 @@ def run_with_journal(
             dst.remove(target_rel(t), recursive=True)
         todo.append(t)
 
+    unsaved = 0
+    saved_at: float | None = None  # the first finished partition is saved at once
+
     def finished(r: R) -> None:
+        nonlocal unsaved, saved_at
         if r.ok:
             state["partitions"][result_key(r)] = {"digest": result_digest(r).to_json(), "files": [w.rel for w in r.written]}
-            save(dst, state)
+            unsaved += 1
+            if saved_at is None or time.monotonic() - saved_at >= SAVE_EVERY_S:
+                save(dst, state)
+                unsaved, saved_at = 0, time.monotonic()
         progress(r)
         faults.reached("partition-written")
 
-    for r in run(todo, finished):
-        done[result_key(r)] = r
+    try:
+        for r in run(todo, finished):
+            done[result_key(r)] = r
+    except BaseException:  # a partition failed, or Ctrl-C: keep what the others finished for --resume
+        if unsaved:
+            with contextlib.suppress(Exception):  # the original error is the one to report
+                save(dst, state)
+        raise
+    if unsaved:
+        save(dst, state)
     return [done[key_of(t)] for t in tasks], state
