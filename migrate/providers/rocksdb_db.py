@@ -226,15 +226,31 @@ def byte_order(keys: pa.Array) -> pa.Array:
     return pa.Array.from_buffers(pa.int64(), len(keys), [None, pa.py_buffer(raw)])
 
 
+def strictly_increasing(keys: pa.Array) -> bool:
+    """Whether every key (binary, no nulls) is byte-wise greater than the one before it: sorted as
+    an SST file needs, with no key twice. Arrow compares binary values byte by byte as unsigned,
+    the shorter first when one is a prefix of the other (RocksDB's default comparator). Measured on
+    six 156k-key partitions of the 10M-key benchmark checkpoint: the check costs 0.007-0.010 CPU us
+    per key; the sort, the two takes and the duplicate check it spares cost 0.09-0.12 on those
+    (sorted) keys. A heap-map read in key order followed by this write, against a read in file
+    order and the sort, alternating per partition over 11 partitions twice, in one process:
+    1.69-1.74 -> 1.49-1.61 CPU us per row for read and write together.
+    """
+    if len(keys) < 2:
+        return True
+    return bool(pc.all(pc.less(keys.slice(0, len(keys) - 1), keys.slice(1))).as_py())
+
+
 def _write_run(keys: list[pa.Array], values: list[pa.Array], options, path: str, where: str) -> str:
     from rocksdict import SstFileWriter
 
     k = pa.concat_arrays(keys)
     v = pa.concat_arrays(values)
-    order = byte_order(k)
-    k, v = k.take(order), v.take(order)
-    if len(k) > 1 and pc.any(pc.equal(k.slice(1), k.slice(0, len(k) - 1))).as_py():
-        raise CorruptInput("the rows to write carry the same key twice", where)
+    if not strictly_increasing(k):  # rows replayed from a heap map or read from RocksDB come sorted
+        order = byte_order(k)
+        k, v = k.take(order), v.take(order)
+        if len(k) > 1 and pc.any(pc.equal(k.slice(1), k.slice(0, len(k) - 1))).as_py():
+            raise CorruptInput("the rows to write carry the same key twice", where)
     writer = SstFileWriter(options=options)
     writer.open(path)
     for start in range(0, len(k), BATCH_ROWS):
