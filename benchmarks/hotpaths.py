@@ -33,6 +33,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("checkpoint", type=Path)
     ap.add_argument("--partitions", type=int, default=0, help="only the first N partitions (default: all)")
     ap.add_argument("--stages", default="read,digest,write-rocksdb,read-rocksdb,write-hdfs,read-hdfs")
+    ap.add_argument("--key-order", action="store_true", help="read the source in key order (ReadContext.key_order), as a convert to RocksDB does")
     args = ap.parse_args(argv)
     stages = args.stages.split(",")
     ck = load_checkpoint(open_location(str(args.checkpoint)))
@@ -51,7 +52,8 @@ def main(argv: list[str] | None = None) -> int:
                 totals = {s: 0.0 for s in stages}
                 rows = 0
             t = time.process_time()
-            batches = list(src.read(sp.dir, ck.state_version, ReadContext(conf=ck.conf, listing=sp.listing)))
+            order = {"key_order": True} if args.key_order else {}  # absent from trees older than the hint
+            batches = list(src.read(sp.dir, ck.state_version, ReadContext(conf=ck.conf, listing=sp.listing, **order)))
             totals["read"] = totals.get("read", 0) + time.process_time() - t
             rows += sum(b.num_rows for b in batches)
             if "digest" in stages:

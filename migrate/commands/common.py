@@ -129,7 +129,10 @@ def run_partition(task: PartitionTask) -> PartitionResult:
     """Move one store partition and prove it by reading the target back."""
     src = provider_for(task.source_provider)
     dst = provider_for(task.target_provider)
-    rctx = ReadContext(conf=task.read_conf, num_cols_prefix_key=task.num_cols_prefix_key, listing=task.listing, checkpoint_id=task.source_uid)
+    rctx = ReadContext(
+        conf=task.read_conf, num_cols_prefix_key=task.num_cols_prefix_key, listing=task.listing, checkpoint_id=task.source_uid,
+        key_order=dst.wants_key_order,
+    )
     source_bytes = sum(f.size for f in src.source_files(task.source, task.version, rctx))
     props = src.store_properties(task.source, task.version, rctx)  # what the rows cannot carry
     dst.check_writable(props, task.source.describe())

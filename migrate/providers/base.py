@@ -64,6 +64,9 @@ class ReadContext:
     extra: dict[str, str] = field(default_factory=dict)  # store properties, when the files cannot tell
     #: unique id of the version to read (state checkpoint format 2: the commit log names it); None: format 1
     checkpoint_id: str | None = None
+    #: a hint: the caller writes to a layout that keeps rows sorted (``Provider.wants_key_order``),
+    #: so a reader that can give them in byte-wise key order for little cost should; never a promise
+    key_order: bool = False
 
     @property
     def codec(self) -> str:
@@ -122,6 +125,9 @@ class Provider(ABC):
 
     #: whether this layout can hold a store whose rows live in several column families
     supports_column_families: bool = False
+    #: whether the writer sorts the rows by key (and so saves that work when they come sorted): a
+    #: reader feeding it is asked for key order (``ReadContext.key_order``)
+    wants_key_order: bool = False
 
     def store_properties(self, store: StoreDir, version: int, ctx: ReadContext) -> dict[str, str]:
         """Facts about ``version`` of ``store`` that a writer needs besides the rows (see above)."""

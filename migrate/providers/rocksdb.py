@@ -177,6 +177,7 @@ class RocksDBProvider(Provider):
     name = "rocksdb"
     class_names = ("org.apache.spark.sql.execution.streaming.state.RocksDBStateStoreProvider",)
     supports_column_families = True
+    wants_key_order = True  # table files are written sorted (rocksdb_db.sorted_runs)
 
     def __init__(self, run_bytes: int = RUN_BYTES) -> None:
         self.run_bytes = run_bytes

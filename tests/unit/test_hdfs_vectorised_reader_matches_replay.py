@@ -120,15 +120,18 @@ def test_bad_negative_lengths_are_refused_with_the_same_message():
 # --- the replay itself (resolve_versions), against an ordered dict replay -----------------------
 
 
-def ordered_replay(files: list[list[tuple[bytes, bytes | None]]]) -> list[tuple[bytes, bytes]]:
-    """Surviving (key, value) pairs in the file order of each key's last write."""
+def ordered_replay(files: list[list[tuple[bytes, bytes | None]]], key_order: bool) -> list[tuple[bytes, bytes]]:
+    """Surviving (key, value) pairs of a dict replay, in the file order of each key's last write,
+    or with ``key_order`` in byte-wise key order (Python compares bytes as unsigned bytes, the
+    shorter first when one is a prefix of the other)."""
     last: dict[bytes, tuple[int, bytes | None]] = {}
     position = 0
     for records in files:
         for key, value in records:
             last[key] = (position, value)
             position += 1
-    return [(k, v) for k, (_, v) in sorted(last.items(), key=lambda item: item[1][0]) if v is not None]
+    ordered = sorted(last.items()) if key_order else sorted(last.items(), key=lambda item: item[1][0])
+    return [(k, v) for k, (_, v) in ordered if v is not None]
 
 
 def as_arrays(records: list[tuple[bytes, bytes | None]], large: bool):
@@ -153,13 +156,14 @@ def test_the_compiled_replay_is_the_one_used():
 
 @pytest.mark.parametrize("replay", REPLAYS.values(), ids=REPLAYS.keys())
 @settings(max_examples=300, deadline=None)
-@given(files=st.lists(st.lists(record, max_size=12), max_size=5), large=st.booleans())
-def test_resolve_versions_is_the_ordered_replay(replay, files, large):
+@given(files=st.lists(st.lists(record, max_size=12), max_size=5), large=st.booleans(), key_order=st.booleans())
+def test_resolve_versions_is_the_ordered_replay(replay, files, large, key_order):
     """Last write wins, removals drop the key (also keys removed and written again, keys written
     twice in one file, keys removed that never existed), and the survivors come out in the file
-    order of their last write; with binary and large_binary arrays."""
-    keys, values = replay([as_arrays(f, large) for f in files])
-    assert list(zip(keys.to_pylist(), values.to_pylist())) == ordered_replay(files)
+    order of their last write, or in byte-wise key order when asked; with binary and large_binary
+    arrays."""
+    keys, values = replay([as_arrays(f, large) for f in files], key_order)
+    assert list(zip(keys.to_pylist(), values.to_pylist())) == ordered_replay(files, key_order)
 
 
 @pytest.mark.parametrize("replay", REPLAYS.values(), ids=REPLAYS.keys())
@@ -173,18 +177,53 @@ def test_long_histories_replay_in_order(replay, seed):
         [(rng.choice(pool), None if rng.random() < 0.15 else rng.randbytes(rng.randrange(0, 12))) for _ in range(rng.randrange(0, 3000))]
         for _ in range(rng.randrange(1, 7))
     ]
-    keys, values = replay([as_arrays(f, seed % 2 == 1) for f in files])
-    assert list(zip(keys.to_pylist(), values.to_pylist())) == ordered_replay(files)
+    for key_order in (False, True):
+        keys, values = replay([as_arrays(f, seed % 2 == 1) for f in files], key_order)
+        assert list(zip(keys.to_pylist(), values.to_pylist())) == ordered_replay(files, key_order)
 
 
 @pytest.mark.parametrize("replay", REPLAYS.values(), ids=REPLAYS.keys())
-def test_resolve_versions_without_overwrites_keeps_file_order_and_type(replay):
-    files = [[(b"b", b"2"), (b"a", b"1")], [(b"c", b"3")]]
-    keys, values = replay([as_arrays(f, False) for f in files])
-    assert keys.to_pylist() == [b"b", b"a", b"c"] and values.to_pylist() == [b"2", b"1", b"3"]
+def test_resolve_versions_without_overwrites_keeps_the_order_asked_for_and_the_type(replay):
+    files = [as_arrays(f, False) for f in [[(b"b", b"2"), (b"\xff", b"9"), (b"a", b"1")], [(b"c", b"3")]]]
+    keys, values = replay(files)
+    assert keys.to_pylist() == [b"b", b"\xff", b"a", b"c"] and values.to_pylist() == [b"2", b"9", b"1", b"3"]
     assert keys.type == values.type == pa.binary()
-    keys, values = replay([])
-    assert len(keys) == len(values) == 0
+    keys, values = replay(files, True)
+    assert keys.to_pylist() == [b"a", b"b", b"c", b"\xff"] and values.to_pylist() == [b"1", b"2", b"3", b"9"]
+    assert keys.type == values.type == pa.binary()
+    for key_order in (False, True):
+        keys, values = replay([], key_order)
+        assert len(keys) == len(values) == 0
+
+
+@pytest.mark.parametrize("replay", REPLAYS.values(), ids=REPLAYS.keys())
+def test_resolve_versions_of_sorted_files_without_overwrites_returns_them_as_they_are(replay):
+    files = [as_arrays([(b"a", b"1"), (b"b", b"2")], False), as_arrays([(b"c", b"3")], False)]
+    for key_order in (False, True):
+        keys, values = replay(files, key_order)
+        assert keys.to_pylist() == [b"a", b"b", b"c"] and values.to_pylist() == [b"1", b"2", b"3"]
+        keys, values = replay(files[:1], key_order)
+        assert keys.equals(files[0][0]) and values.equals(files[0][1])
+
+
+def test_the_reader_gives_key_order_when_asked(tmp_path):
+    """``ReadContext.key_order`` reaches the replay: the same files read in file order by default,
+    in byte-wise key order with the hint (what a RocksDB target asks for: Provider.wants_key_order)."""
+    from migrate.providers.rocksdb import RocksDBProvider
+
+    assert RocksDBProvider.wants_key_order and not HDFSProvider.wants_key_order
+    loc = open_location(str(tmp_path), readonly=False)
+    snapshot = rec(b"m", b"1") + rec(b"\x80", b"2") + rec(b"a", b"3") + rec(b"z", b"4") + END
+    delta = rec(b"a", b"5") + rec(b"z", None) + rec(b"b", b"6") + END
+    loc.write_bytes("state/0/0/1.snapshot", codec_for("lz4").compress(snapshot))
+    loc.write_bytes("state/0/0/2.delta", codec_for("lz4").compress(delta))
+    store = StoreDir(loc, "state/0/0", 0, 0)
+
+    def rows(ctx):
+        return [(r["key"], r["value"]) for b in HDFSProvider().read(store, 2, ctx) for r in b.to_pylist()]
+
+    assert rows(ReadContext()) == [(b"m", b"1"), (b"\x80", b"2"), (b"a", b"5"), (b"b", b"6")]
+    assert rows(ReadContext(key_order=True)) == [(b"a", b"5"), (b"b", b"6"), (b"m", b"1"), (b"\x80", b"2")]
 
 
 def test_reading_the_heap_map_uses_no_acero(tmp_path):
