@@ -233,6 +233,67 @@ def test_corrupt_table_block_is_an_error_not_a_short_read(tmp_path: Path, scratc
     assert os.listdir(scratch) == []
 
 
+def _plain_db(path: Path, keys: list[bytes]) -> None:
+    from rocksdict import Options, Rdict
+
+    options = Options(raw_mode=True)
+    options.create_if_missing(True)
+    db = Rdict(str(path), options=options)
+    for k in keys:
+        db[k] = b"v" + k
+    db.close()
+
+
+@pytest.mark.parametrize(
+    ("last", "complete"),
+    [(b"k-0299", True), (b"k-0150", False), (None, False), (b"k-0150x", False), (b"k-0", False)],
+)
+def test_a_scan_that_ended_early_is_caught(tmp_path: Path, last: bytes | None, complete: bool) -> None:
+    """The completeness check behind the reader's scan (rocksdict's items() view ends silently on
+    an unreadable block): given the last key a scan gave, keys left after it are an error."""
+    from rocksdict import AccessType, Options, Rdict, ReadOptions
+
+    from migrate.providers.rocksdb_db import _check_scan_complete
+
+    _plain_db(tmp_path / "db", [b"k-%04d" % i for i in range(300)])
+    db = Rdict(str(tmp_path / "db"), options=Options(raw_mode=True), access_type=AccessType.read_only())
+    try:
+        if complete:
+            _check_scan_complete(db, ReadOptions(), last, "p/1.zip")
+        else:
+            with pytest.raises(CorruptInput, match="ended early") as info:
+                _check_scan_complete(db, ReadOptions(), last, "p/1.zip")
+            assert info.value.path == "p/1.zip"
+    finally:
+        db.close()
+
+
+def test_an_empty_scan_of_an_empty_store_is_complete(tmp_path: Path) -> None:
+    from rocksdict import AccessType, Options, Rdict, ReadOptions
+
+    from migrate.providers.rocksdb_db import _check_scan_complete, iterate
+
+    _plain_db(tmp_path / "db", [])
+    assert list(iterate(str(tmp_path / "db"), "p/1.zip")) == []
+    db = Rdict(str(tmp_path / "db"), options=Options(raw_mode=True), access_type=AccessType.read_only())
+    try:
+        _check_scan_complete(db, ReadOptions(), None, "p/1.zip")
+    finally:
+        db.close()
+
+
+def test_the_scan_gives_every_row_in_order_across_batches(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from migrate.providers import rocksdb_db
+
+    monkeypatch.setattr(rocksdb_db, "BATCH_ROWS", 7)  # many batches, the last one short
+    keys = sorted(os.urandom(5) for _ in range(100))
+    _plain_db(tmp_path / "db", keys)
+    got = list(rocksdb_db.iterate(str(tmp_path / "db"), "p/1.zip"))
+    assert [len(k) for k, _ in got] == [7] * 14 + [2]
+    assert [x for k, _ in got for x in k.to_pylist()] == keys
+    assert [x for _, v in got for x in v.to_pylist()] == [b"v" + k for k in keys]
+
+
 def test_abandoned_read_removes_its_temporary_folder(tmp_path: Path, scratch: Path) -> None:
     part = _engine_copy(tmp_path)
     store = StoreDir(open_location(str(part)), "", 0, 0)
