@@ -163,22 +163,36 @@ def _read(ctx: _Ctx, pos: np.ndarray, dtype: str, valid: np.ndarray) -> np.ndarr
     """
     dt = np.dtype(dtype)
     width = dt.itemsize
-    safe = np.where(valid, pos, 0)
+    everywhere = bool(valid.all())
+    if everywhere:
+        safe = pos
+    else:  # read a valid position in place of the others (same remainder), zeroed below
+        first = np.flatnonzero(valid)
+        safe = np.where(valid, pos, pos[first[0]] if len(first) else 0)
     if width == 1:
         out = ctx.buf[safe].view(dt)
-    else:
-        residue = safe % width
-        present = np.flatnonzero(np.bincount(residue, minlength=width))
-        if len(present) == 1:
-            r = int(present[0])
-            out = ctx.view(dt, r)[(safe - r) // width]
+    elif len(safe) and not width & (width - 1):  # 2, 4, 8 bytes: remainders by a mask, one check
+        shift = width.bit_length() - 1
+        residue = safe & (width - 1)
+        r = int(residue[0])
+        if (residue == r).all():
+            out = ctx.view(dt, r)[(safe - r) >> shift]
         else:
-            out = np.empty(len(safe), dt)
-            for r in present.tolist():
-                m = residue == r
-                out[m] = ctx.view(dt, r)[(safe[m] - r) // width]
-    if not valid.all():
+            out = _read_by_remainder(ctx, safe, residue, dt)
+    else:
+        out = _read_by_remainder(ctx, safe, safe % width, dt)
+    if not everywhere:
         out = np.where(valid, out, np.zeros(1, dt))
+    return out
+
+
+def _read_by_remainder(ctx: _Ctx, safe: np.ndarray, residue: np.ndarray, dt: np.dtype) -> np.ndarray:
+    """:func:`_read` for positions of several remainders modulo the width: one gather each."""
+    width = dt.itemsize
+    out = np.empty(len(safe), dt)
+    for r in np.flatnonzero(np.bincount(residue, minlength=width)).tolist():
+        m = residue == r
+        out[m] = ctx.view(dt, r)[(safe[m] - r) // width]
     return out
 
 
@@ -217,12 +231,31 @@ def _var_slots(ctx: _Ctx, slot: np.ndarray, base: np.ndarray, end: np.ndarray,
 
 
 def _gather_bytes(ctx: _Ctx, start: np.ndarray, size: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Concatenate byte ranges: returns (int64 offsets of length n+1, uint8 values)."""
-    out_offsets = np.zeros(len(size) + 1, np.int64)
+    """Concatenate byte ranges: returns (int64 offsets of length n+1, uint8 values).
+
+    When the ranges come in buffer order (each one starts at or after the end of the one before:
+    the values of one field over the rows of a batch always do), the buffer is viewed as one
+    Arrow binary array whose elements alternate range / gap, and Arrow's ``take`` of the ranges
+    copies them in C; else (elements of nested arrays may point anywhere in their row) one numpy
+    fancy-index over every byte. Measured on four 10M-key benchmark partitions (a string and a
+    long in the key, four longs in the value), one run each: the whole decode 0.28 -> 0.19-0.20
+    CPU us per row; with the single-gather reads of :func:`_read` and the one read of the null
+    bits per struct, 0.33-0.39 -> 0.19-0.22 (both versions alternating in one process, twice)."""
+    n = len(size)
+    out_offsets = np.zeros(n + 1, np.int64)
     np.cumsum(size, out=out_offsets[1:])
     total = int(out_offsets[-1])
     if total == 0:
         return out_offsets, np.zeros(0, np.uint8)
+    bounds = np.empty(2 * n, np.int64)
+    bounds[0::2] = start
+    bounds[1::2] = start + size
+    if n > 1 and bool((bounds[1:] >= bounds[:-1]).all()):
+        ranges = pa.Array.from_buffers(pa.large_binary(), 2 * n - 1, [None, pa.py_buffer(bounds), pa.py_buffer(ctx.buf)])
+        taken = ranges.take(pa.array(np.arange(0, 2 * n, 2, dtype=np.int64)))
+        assert taken.offset == 0  # a fresh array: its data buffer starts with the first range
+        data = taken.buffers()[2]
+        return out_offsets, np.frombuffer(data, np.uint8, count=total, offset=0) if data is not None else np.zeros(0, np.uint8)
     idx = np.repeat(start - out_offsets[:-1], size) + np.arange(total, dtype=np.int64)
     return out_offsets, ctx.buf[idx]
 
@@ -241,9 +274,14 @@ def _struct(ctx: _Ctx, start: np.ndarray, length: np.ndarray, valid: np.ndarray,
         ctx.fail(f"a row of {nfields} fields needs at least {fixed} bytes", bad, path)
     end = start + length
     children = []
+    # the first 64 null bits in one read (the bitset is little-endian 64-bit words), not one per field
+    first_word = _read(ctx, start, "<u8", valid) if nfields else None
     for j, f in enumerate(t.fields):
         child_path = f"{path}.{f.name}" if path else f.name
-        field_valid = valid & ~_bit(ctx, start, j, valid)
+        if j < 64:
+            field_valid = valid & (((first_word >> np.uint64(j)) & np.uint64(1)) == 0)
+        else:
+            field_valid = valid & ~_bit(ctx, start, j, valid)
         slot = start + null_bytes + 8 * j
         children.append(_value(ctx, slot, start, end, field_valid, f.data_type, 8, child_path))
     atype = pa.struct([pa.field(f.name, c.type, f.nullable or isinstance(f.data_type, NullType))

@@ -269,3 +269,45 @@ def test_java_modified_utf8_nul_and_surrogates_decode():
     from migrate.rows.schema import _modified_utf8
 
     assert _modified_utf8(b"a\xc0\x80b\xed\xa0\xbd\xed\xb8\x80", "w") == "a\x00b\U0001F600"
+
+
+@pytest.mark.parametrize("pads", [(0, 3, 0), (1, 2, 5), (7, 0, 4), (4, 4, 4)])
+def test_rows_starting_at_mixed_byte_remainders_decode_alike(pads):
+    """Rows whose lengths are not multiples of 8 (trailing bytes the layout ignores) put the next
+    row's fields at another remainder modulo their width: each remainder is its own gather. Null
+    rows and null fields are mixed in, so positions that are not read are replaced too."""
+    t = schema(ShortType(), IntegerType(), LongType(), DoubleType(), StringType())
+    text = "abé".encode()  # 4 bytes
+    rows = [  # null bitset, five 8-byte slots, then the string's bytes at offset 48
+        q(0) + struct.pack("<h", -7) + bytes(6) + struct.pack("<i", 123456) + bytes(4) + q(-(2 ** 50))
+        + struct.pack("<d", 2.5) + slot(48, len(text)) + text + bytes(4),
+        q(1 << 1 | 1 << 3) + struct.pack("<h", 9) + bytes(6) + bytes(8) + q(5) + bytes(8) + slot(48, 0),
+        q(0) + struct.pack("<h", 1) + bytes(6) + struct.pack("<i", -1) + bytes(4) + q(7)
+        + struct.pack("<d", -1.0) + slot(48, 8) + b"12345678",
+    ]
+    expected = [
+        {"c0": -7, "c1": 123456, "c2": -(2 ** 50), "c3": 2.5, "c4": "abé"},
+        {"c0": 9, "c1": None, "c2": 5, "c3": None, "c4": ""},
+        {"c0": 1, "c1": -1, "c2": 7, "c3": -1.0, "c4": "12345678"},
+    ]
+    padded = [r + b"\xee" * p for r, p in zip(rows, pads)]
+    data = pa.array(padded[:1] + [None] + padded[1:], pa.binary())
+    got = decode_rows(data, t, "vector")
+    got.validate(full=True)
+    assert got.to_pylist() == expected[:1] + [None] + expected[1:]
+    for r, e in zip(padded, expected):  # each row alone: one remainder
+        assert decode_rows(pa.array([r], pa.binary()), t, "vector").to_pylist() == [e]
+
+
+def test_array_elements_whose_bytes_are_not_in_element_order():
+    """The layout lets an element's slot point anywhere in its array; the bytes of element 1 placed
+    before those of element 0 still decode in element order (the gather's fallback for ranges
+    that are not in buffer order)."""
+    t = schema(ArrayType(StringType(), True))
+    row = (q(0) + slot(16, 48)  # null bits, the array at byte 16, 48 bytes long
+           + q(2) + q(0)  # two elements, no nulls
+           + slot(40, 3) + slot(32, 2)  # element 0 "abc" at array byte 40, element 1 "xy" at 32
+           + b"xy" + bytes(6) + b"abc" + bytes(5))
+    got = decode_rows(pa.array([row, row], pa.binary()), t, "vector")
+    got.validate(full=True)
+    assert got.to_pylist() == [{"c0": ["abc", "xy"]}, {"c0": ["abc", "xy"]}]
