@@ -125,6 +125,18 @@ def _run(args: argparse.Namespace) -> int:
 
 
 def main(argv: list[str] | None = None) -> int:
+    from . import workers
+
+    argv = sys.argv[1:] if argv is None else list(argv)
+    if workers.likely_parallel(argv):  # before the imports of the parser, which take as long
+        workers.start()
+    try:
+        return _main(argv)
+    finally:
+        workers.stop()  # also after a usage error, which leaves by SystemExit
+
+
+def _main(argv: list[str]) -> int:
     parser = _parser()
     args = parser.parse_args(argv)
     secrets: list[str] = []

@@ -12,9 +12,9 @@ import os
 from collections.abc import Callable, Iterable
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
-from multiprocessing import get_all_start_methods, get_context
 from typing import Any
 
+from .. import workers
 from ..checkpoint.engine import (
     SPARK_35,
     EngineInference,
@@ -245,8 +245,8 @@ def digest_partition(
     return digest_batches(p.read(sp.dir, version, ctx)), size
 
 
-PARALLEL_MIN_BYTES = 16 << 20
-PARALLEL_MIN_TASKS = 8
+PARALLEL_MIN_BYTES = workers.MIN_BYTES
+PARALLEL_MIN_TASKS = workers.MIN_TASKS
 
 
 def _known_bytes(units: list[Any]) -> int:
@@ -266,26 +266,9 @@ def _known_bytes(units: list[Any]) -> int:
     return total
 
 
-# Imported once by the fork server, so each worker starts as a fork of a process that has them
-# (spawned workers each paid ~1 CPU second importing pyarrow, numpy and rocksdict). pandas is not
-# ours: pyarrow imports it, when it is installed, on the first ``pa.array`` of a list or numpy
-# array (observed: 0.35 CPU s, 53 MB), so the server does that once for all workers; the fork
-# server skips a preload module that is not installed.
-_WORKER_PRELOAD = [
-    "migrate.commands.convert", "migrate.commands.export", "migrate.commands.import_archive",
-    "pyarrow.compute", "pyarrow.parquet", "rocksdict", "pandas",
-]
-
-
 def _worker_context() -> Any:
-    """The process start method for workers: a fork server (a clean single-threaded process that
-    has the heavy modules imported; never the caller itself, which may hold threads or an open
-    RocksDB), else spawn where fork servers do not exist."""
-    if "forkserver" not in get_all_start_methods():
-        return get_context("spawn")
-    ctx = get_context("forkserver")
-    ctx.set_forkserver_preload(_WORKER_PRELOAD)
-    return ctx
+    """The process start method for workers (:func:`migrate.workers.context`)."""
+    return workers.context()
 
 
 def uses_workers(jobs: int, units: list[Any]) -> bool:
@@ -300,14 +283,13 @@ def uses_workers(jobs: int, units: list[Any]) -> bool:
 
 def start_workers_early(jobs: int, units: list[Any]) -> None:
     """Start the workers' fork server now if :func:`run_tasks` will use it for these units, so its
-    imports (about a CPU second) overlap the checks and planning before the pool starts (measured:
-    0.5 s of main-process work between loading a 64-partition checkpoint and starting the pool).
+    imports (about a CPU second) overlap the checks and planning before the pool starts; stop one
+    the command line started on a guess (``migrate.workers.likely_parallel``) if it will not.
     :func:`run_tasks`, or :func:`stop_workers` on any other way out, stops it."""
-    if uses_workers(jobs, units) and "forkserver" in get_all_start_methods():
-        from multiprocessing import forkserver
-
-        _worker_context()  # sets the preload list the server starts with
-        forkserver.ensure_running()  # returns once the server process is launched, not imported
+    if uses_workers(jobs, units):
+        workers.start()
+    else:
+        workers.stop()
 
 
 def run_tasks(
@@ -324,6 +306,7 @@ def run_tasks(
     """
     results: list[PartitionResult] = []
     if not uses_workers(jobs, tasks):
+        workers.stop()  # one started on a guess
         for t in tasks:
             r = fn(t)
             on_done(r)
@@ -352,11 +335,7 @@ def stop_workers() -> None:
     which the benchmarks read); the next ``run_tasks`` starts a new one. ``run_tasks`` calls it after
     its pool, the CLI on every way out (so a server started early is never left behind by an error
     before the pool)."""
-    from multiprocessing import forkserver
-
-    stop = getattr(getattr(forkserver, "_forkserver", None), "_stop", None)  # CPython >= 3.9
-    if stop is not None:
-        stop()
+    workers.stop()
 
 
 def tasks_for(

@@ -1,5 +1,7 @@
-"""The workers' fork server starts while the command still plans, only when the pool will be used,
-and never outlives the command: not after a finished run, not after an error before the pool."""
+"""The workers' fork server starts while the command still plans, only when the pool will be used
+(or on the command line's guess, stopped again when the plan shows it will not be), and never
+outlives the command: not after a finished run, not after an error before the pool, not after a
+usage error."""
 
 from __future__ import annotations
 
@@ -10,6 +12,7 @@ from types import SimpleNamespace
 
 import pytest
 
+from migrate import workers
 from migrate.commands import common
 from migrate.storage import Entry
 
@@ -49,6 +52,65 @@ def test_early_start_launches_the_server_only_when_the_pool_will_be_used():
     common.start_workers_early(2, units(common.PARALLEL_MIN_TASKS, 10))
     assert server_pid() is not None
     common.stop_workers()
+    assert server_pid() is None
+
+
+def test_a_server_started_on_a_guess_is_stopped_when_the_plan_is_small():
+    workers.start()
+    assert server_pid() is not None
+    common.start_workers_early(2, units(3, 10))  # the plan: a small job, run in this process
+    assert server_pid() is None
+
+
+def _checkpoint(root: Path, partitions: int, size: int = 10) -> Path:
+    for p in range(partitions):
+        folder = root / "state" / "0" / str(p)
+        (folder / "_metadata").mkdir(parents=True)
+        (folder / "1.delta").write_bytes(bytes(size))
+    (root / "state" / "0" / "_metadata").mkdir(parents=True, exist_ok=True)
+    return root
+
+
+def _archive(root: Path, partitions: int) -> Path:
+    for p in range(partitions):
+        folder = root / "data" / "operator=0" / "store=default" / f"partition={p}"
+        folder.mkdir(parents=True)
+        (folder / "part-0.parquet").write_bytes(bytes(10))
+    return root
+
+
+def test_the_guess_from_the_command_line(tmp_path: Path):
+    many = _checkpoint(tmp_path / "many", workers.MIN_TASKS)
+    few = _checkpoint(tmp_path / "few", workers.MIN_TASKS - 1)
+    heavy = _checkpoint(tmp_path / "heavy", 2, size=workers.MIN_BYTES // 2)
+    archive = _archive(tmp_path / "archive", workers.MIN_TASKS)
+    guess = workers.likely_parallel
+    assert guess(["convert", str(many), "out", "--to", "rocksdb", "-j", "2"])
+    assert guess(["convert", "--to", "rocksdb", "--jobs=2", str(many), "out"])  # options anywhere
+    assert guess(["export", str(heavy), "arch", "-j2"])  # few partitions, many bytes
+    assert guess(["import", str(archive), "out", "--to", "hdfs", "--jobs", "2"])
+    assert guess(["convert", "s3://bucket/cp", "s3://bucket/out", "--to", "rocksdb", "-j", "2"])  # remote: assume large
+    assert not guess(["convert", str(few), "out", "--to", "rocksdb", "-j", "2"])
+    assert not guess(["convert", str(many), "out", "--to", "rocksdb", "-j", "1"])
+    assert not guess(["convert", str(many), "out", "--to", "rocksdb", "-j", "x"])  # argparse refuses it
+    assert not guess(["convert", str(many), "out", "--to", "rocksdb", "-j", "2", "--dry-run"])
+    assert not guess(["convert", str(many), "--help"])
+    assert not guess(["inspect", str(many)])
+    assert not guess(["verify", str(many), str(many)])
+    assert not guess([])
+
+
+def test_a_usage_error_after_a_guessed_start_leaves_no_server(tmp_path: Path, monkeypatch: pytest.MonkeyPatch):
+    from migrate.cli import main
+
+    many = _checkpoint(tmp_path / "many", workers.MIN_TASKS)
+    started = []
+    real = workers.start
+    monkeypatch.setattr(workers, "start", lambda: (real(), started.append(server_pid())))
+    with pytest.raises(SystemExit) as info:  # argparse leaves by SystemExit(2)
+        main(["convert", str(many), str(tmp_path / "out"), "--to", "rocksdb", "-j", "2", "--no-such-option"])
+    assert info.value.code == 2
+    assert started and started[0] is not None  # the guess had started the server
     assert server_pid() is None
 
 

@@ -1,0 +1,155 @@
+"""The workers' fork server: what it imports, its start and its stop, and the guess the command line
+makes before its own imports. This module imports nothing heavy, so ``cli.main`` can start the
+server first thing.
+
+Workers are forked from a fork server: a clean single-threaded process that has the heavy modules
+imported (spawned workers each paid about a CPU second importing pyarrow, numpy and rocksdict),
+never the command's own process, which may hold threads or an open RocksDB. Its imports take
+about half a second of wall clock, and so do the command's own (its parser imports every command
+module). Started only once the command had loaded the checkpoint, the server was still importing
+when the pool needed it (measured on a 64-partition convert of 1M keys: the pool waited 0.67 s
+for it). :func:`likely_parallel` therefore guesses from the command line and the source's
+directory layout, before those imports, whether the command will use workers; the command then
+decides for certain (``commands.common.start_workers_early``) and stops a server it will not use.
+"""
+
+from __future__ import annotations
+
+import os
+from multiprocessing import get_all_start_methods, get_context
+from typing import Any
+
+# Imported once by the fork server, so each worker starts as a fork of a process that has them.
+# pandas is not ours: pyarrow imports it, when it is installed, on the first ``pa.array`` of a
+# list or numpy array (observed: 0.35 CPU s, 53 MB), so the server does that once for all
+# workers; the fork server skips a preload module that is not installed.
+PRELOAD = [
+    "migrate.commands.convert", "migrate.commands.export", "migrate.commands.import_archive",
+    "pyarrow.compute", "pyarrow.parquet", "rocksdict", "pandas",
+]
+
+#: the commands whose store partitions run in workers
+PARALLEL_COMMANDS = ("convert", "export", "import")
+#: a command with at least this many store partitions (or bytes) uses workers
+#: (``commands.common.uses_workers`` makes the decision; these are its thresholds)
+MIN_TASKS = 8
+MIN_BYTES = 16 << 20
+
+
+def context() -> Any:
+    """The process start method for workers: the fork server with :data:`PRELOAD`, else spawn
+    where fork servers do not exist."""
+    if "forkserver" not in get_all_start_methods():
+        return get_context("spawn")
+    ctx = get_context("forkserver")
+    ctx.set_forkserver_preload(PRELOAD)
+    return ctx
+
+
+def start() -> None:
+    """Launch the fork server now (a no-op if it runs, or where there is none). Returns once the
+    server process is launched, not once it has imported :data:`PRELOAD`."""
+    if "forkserver" in get_all_start_methods():
+        from multiprocessing import forkserver
+
+        context()  # sets the preload list the server starts with
+        forkserver.ensure_running()
+
+
+def stop() -> None:
+    """Stop the fork server this process started, if any, and wait for it (its workers' CPU time
+    and memory are then accounted to this process, as spawned children's are)."""
+    from multiprocessing import forkserver
+
+    stop_server = getattr(getattr(forkserver, "_forkserver", None), "_stop", None)  # CPython >= 3.9
+    if stop_server is not None:
+        stop_server()
+
+
+def running() -> bool:
+    from multiprocessing import forkserver
+
+    return getattr(getattr(forkserver, "_forkserver", None), "_forkserver_pid", None) is not None
+
+
+def likely_parallel(argv: list[str]) -> bool:
+    """Whether this command line will probably run store partitions in workers: a convert, export
+    or import (not a dry run, not help) with more than one job, whose source is remote or a local
+    checkpoint or archive with at least :data:`MIN_TASKS` store partitions or :data:`MIN_BYTES` of
+    state. Every argument that names a local directory is looked at (no option table needed: a
+    value such as ``rocksdb`` or ``KEY=VALUE`` is no directory); a wrong guess costs a server
+    started and stopped again, or one started later."""
+    if not argv or argv[0] not in PARALLEL_COMMANDS:
+        return False
+    if any(a in ("-h", "--help", "--dry-run") for a in argv[1:]):
+        return False
+    if _jobs(argv[1:]) <= 1:
+        return False
+    for arg in argv[1:]:
+        if arg.startswith("-"):
+            continue
+        if "://" in arg and not arg.startswith("file://"):
+            return True
+        path = arg[len("file://"):] if arg.startswith("file://") else arg
+        if os.path.isdir(path) and _looks_big(path):
+            return True
+    return False
+
+
+def _jobs(args: list[str]) -> int:
+    jobs = os.cpu_count() or 1  # the --jobs default (commands.common.add_jobs_argument)
+    for i, a in enumerate(args):
+        value = None
+        if a in ("-j", "--jobs") and i + 1 < len(args):
+            value = args[i + 1]
+        elif a.startswith("--jobs="):
+            value = a[len("--jobs="):]
+        elif a.startswith("-j") and len(a) > 2:
+            value = a[2:]
+        if value is not None:
+            try:
+                jobs = int(value)
+            except ValueError:
+                return 1  # argparse will refuse it
+    return jobs
+
+
+def _looks_big(root: str) -> bool:
+    """At least MIN_TASKS store partitions (``state/<operator>/<partition>`` of a checkpoint,
+    ``data/operator=*/store=*/partition=*`` of an archive) or MIN_BYTES of files in them."""
+    partitions = _partition_dirs(root)
+    if len(partitions) >= MIN_TASKS:
+        return True
+    total = 0
+    for folder in partitions:
+        for dirpath, _, names in os.walk(folder):
+            for name in names:
+                try:
+                    total += os.path.getsize(os.path.join(dirpath, name))
+                except OSError:
+                    pass
+                if total >= MIN_BYTES:
+                    return True
+    return False
+
+
+def _partition_dirs(root: str) -> list[str]:
+    out: list[str] = []
+    for top, depth in ((os.path.join(root, "state"), 2), (os.path.join(root, "data"), 3)):
+        level = [top]
+        for _ in range(depth):
+            level = [e.path for d in level for e in _subdirs(d)]
+            if not level:
+                break
+        out += level
+        if len(out) >= MIN_TASKS:
+            break
+    return out
+
+
+def _subdirs(folder: str) -> list[os.DirEntry]:
+    try:
+        with os.scandir(folder) as entries:
+            return [e for e in entries if e.is_dir(follow_symlinks=False) and not e.name.startswith((".", "_"))]
+    except OSError:
+        return []
