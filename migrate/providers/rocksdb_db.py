@@ -273,20 +273,33 @@ def strictly_increasing(keys: pa.Array) -> bool:
 def _write_run(keys: list[pa.Array], values: list[pa.Array], options, path: str, where: str) -> str:
     from rocksdict import SstFileWriter
 
-    k = pa.concat_arrays(keys)
-    v = pa.concat_arrays(values)
-    if not strictly_increasing(k):  # rows replayed from a heap map or read from RocksDB come sorted
+    if _batches_increasing(keys):  # rows replayed from a heap map or read from RocksDB come sorted
+        parts = list(zip(keys, values))  # written as they are: no concatenated copy of the run
+    else:
+        k = pa.concat_arrays(keys)
+        v = pa.concat_arrays(values)
         order = byte_order(k)
         k, v = k.take(order), v.take(order)
         if len(k) > 1 and pc.any(pc.equal(k.slice(1), k.slice(0, len(k) - 1))).as_py():
             raise CorruptInput("the rows to write carry the same key twice", where)
+        parts = [(k, v)]
     writer = SstFileWriter(options=options)
     writer.open(path)
-    for start in range(0, len(k), BATCH_ROWS):
-        for key, value in zip(k.slice(start, BATCH_ROWS).to_pylist(), v.slice(start, BATCH_ROWS).to_pylist()):
-            writer[key] = value
+    for k, v in parts:
+        for start in range(0, len(k), BATCH_ROWS):
+            for key, value in zip(k.slice(start, BATCH_ROWS).to_pylist(), v.slice(start, BATCH_ROWS).to_pylist()):
+                writer[key] = value
     writer.finish()
     return path
+
+
+def _batches_increasing(keys: list[pa.Array]) -> bool:
+    """Whether the keys of the batches, one after the other, are strictly increasing: each batch
+    (:func:`strictly_increasing`) and each boundary (Python compares bytes as RocksDB's default
+    comparator does). Empty batches never reach here (``sorted_runs`` skips them)."""
+    if not all(strictly_increasing(k) for k in keys):
+        return False
+    return all(a[len(a) - 1].as_py() < b[0].as_py() for a, b in zip(keys, keys[1:]))
 
 
 def build_db(runs: list[str], rows: int, options, tmp: str, where: str) -> str:

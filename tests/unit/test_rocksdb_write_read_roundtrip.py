@@ -150,10 +150,18 @@ def test_duplicate_keys_are_refused(tmp_path: Path, run_bytes: int) -> None:
         [(b"", b"1"), (b"", b"2")],
     ],
 )
-def test_duplicate_keys_in_sorted_rows_are_refused(tmp_path: Path, pairs) -> None:
+@pytest.mark.parametrize("batch_rows", [1, 2, 3])  # the repeat inside a batch or across two
+def test_duplicate_keys_in_sorted_rows_are_refused(tmp_path: Path, pairs, batch_rows: int) -> None:
     with pytest.raises(CorruptInput, match="same key twice"):
-        RocksDBProvider().write(_store(tmp_path), 1, _batches(pairs, 3), WriteContext())
+        RocksDBProvider().write(_store(tmp_path), 1, _batches(pairs, batch_rows), WriteContext())
     assert not (tmp_path / "state/0/0/1.zip").exists()
+
+
+def test_batches_each_sorted_but_overlapping_are_sorted_together(tmp_path: Path) -> None:
+    pairs = [(b"a", b"1"), (b"c", b"3"), (b"b", b"2"), (b"d", b"4"), (b"\x80", b"5"), (b"e", b"6")]
+    store = _store(tmp_path)
+    RocksDBProvider().write(store, 1, _batches(pairs, 2), WriteContext(write_crc=False))
+    assert _read(store, 1) == sorted(pairs)
 
 
 @settings(max_examples=150, deadline=None)
