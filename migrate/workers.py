@@ -116,7 +116,7 @@ def _jobs(args: list[str]) -> int:
 
 def _looks_big(root: str) -> bool:
     """At least MIN_TASKS store partitions (``state/<operator>/<partition>`` of a checkpoint,
-    ``data/operator=*/store=*/partition=*`` of an archive) or MIN_BYTES of files in them."""
+    ``state/operator=*/store=*/partition=*`` of an archive) or MIN_BYTES of files in them."""
     partitions = _partition_dirs(root)
     if len(partitions) >= MIN_TASKS:
         return True
@@ -134,17 +134,12 @@ def _looks_big(root: str) -> bool:
 
 
 def _partition_dirs(root: str) -> list[str]:
-    out: list[str] = []
-    for top, depth in ((os.path.join(root, "state"), 2), (os.path.join(root, "data"), 3)):
-        level = [top]
-        for _ in range(depth):
-            level = [e.path for d in level for e in _subdirs(d)]
-            if not level:
-                break
-        out += level
-        if len(out) >= MIN_TASKS:
-            break
-    return out
+    operators = _subdirs(os.path.join(root, "state"))
+    archive = any(e.name.startswith("operator=") for e in operators)  # else a checkpoint's operator ids
+    level = [e.path for e in operators]
+    for _ in range(2 if archive else 1):  # store=*/partition=* of an archive, <partition> of a checkpoint
+        level = [e.path for d in level for e in _subdirs(d)]
+    return level
 
 
 def _subdirs(folder: str) -> list[os.DirEntry]:

@@ -72,10 +72,12 @@ def _checkpoint(root: Path, partitions: int, size: int = 10) -> Path:
 
 
 def _archive(root: Path, partitions: int) -> Path:
+    from migrate.archive.writer import data_file_rel  # the archive's own layout
+
     for p in range(partitions):
-        folder = root / "data" / "operator=0" / "store=default" / f"partition={p}"
-        folder.mkdir(parents=True)
-        (folder / "part-0.parquet").write_bytes(bytes(10))
+        path = root / data_file_rel(0, "default", p)
+        path.parent.mkdir(parents=True)
+        path.write_bytes(bytes(10))
     return root
 
 
@@ -84,11 +86,13 @@ def test_the_guess_from_the_command_line(tmp_path: Path):
     few = _checkpoint(tmp_path / "few", workers.MIN_TASKS - 1)
     heavy = _checkpoint(tmp_path / "heavy", 2, size=workers.MIN_BYTES // 2)
     archive = _archive(tmp_path / "archive", workers.MIN_TASKS)
+    small_archive = _archive(tmp_path / "small-archive", workers.MIN_TASKS - 1)
     guess = workers.likely_parallel
     assert guess(["convert", str(many), "out", "--to", "rocksdb", "-j", "2"])
     assert guess(["convert", "--to", "rocksdb", "--jobs=2", str(many), "out"])  # options anywhere
     assert guess(["export", str(heavy), "arch", "-j2"])  # few partitions, many bytes
     assert guess(["import", str(archive), "out", "--to", "hdfs", "--jobs", "2"])
+    assert not guess(["import", str(small_archive), "out", "--to", "hdfs", "--jobs", "2"])
     assert guess(["convert", "s3://bucket/cp", "s3://bucket/out", "--to", "rocksdb", "-j", "2"])  # remote: assume large
     assert not guess(["convert", str(few), "out", "--to", "rocksdb", "-j", "2"])
     assert not guess(["convert", str(many), "out", "--to", "rocksdb", "-j", "1"])
