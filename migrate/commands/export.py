@@ -98,8 +98,8 @@ class ExportResult:
 def run_export_task(task: ExportTask) -> ExportResult:
     """Read one store partition and stream it into its Parquet file.
 
-    The rows are asked for in key order (``ReadContext.key_order``; a RocksDB source gives it
-    anyway), so an import into RocksDB skips its sort and its copies. Measured at 10M keys, two
+    The rows are asked for in key order (``ReadContext.key_order``; a RocksDB source comes in the
+    order of its own keys anyway), so an import into RocksDB skips its sort and its copies. Measured at 10M keys, two
     alternating pairs of whole commands (``benchmarks/results/2026-12-03-ab-export-order.md``):
     export 16.5 / 17.2 -> 17.3 / 18.5 CPU s (in one process, over eight partitions, the read,
     decode and Parquet write cost 1.30-1.39 against 1.31-1.35 CPU us per row), largest process
