@@ -23,7 +23,7 @@ from typing import Any
 
 from tqdm import tqdm
 
-from . import __version__
+from . import __version__, workers
 from .errors import StateshiftError
 from .storage import mask_text, open_location, parse_storage_options, secret_values
 
@@ -119,21 +119,16 @@ def _run(args: argparse.Namespace) -> int:
         return int(args.run(args, ctx))
     finally:
         ctx.progress.close()
-        from .commands.common import stop_workers
-
-        stop_workers()  # a fork server started early, if an error came before the pool
 
 
 def main(argv: list[str] | None = None) -> int:
-    from . import workers
-
     argv = sys.argv[1:] if argv is None else list(argv)
     if workers.likely_parallel(argv):  # before the imports of the parser, which take as long
         workers.start()
     try:
         return _main(argv)
     finally:
-        workers.stop()  # also after a usage error, which leaves by SystemExit
+        workers.stop()  # a server started early, on any way out: an error before the pool, a usage error
 
 
 def _main(argv: list[str]) -> int:

@@ -266,11 +266,6 @@ def _known_bytes(units: list[Any]) -> int:
     return total
 
 
-def _worker_context() -> Any:
-    """The process start method for workers (:func:`migrate.workers.context`)."""
-    return workers.context()
-
-
 def uses_workers(jobs: int, units: list[Any]) -> bool:
     """Whether :func:`run_tasks` runs these tasks (or the tasks of these store partitions) in
     worker processes: more than one job and one task, and not a small job (fewer than
@@ -301,7 +296,7 @@ def run_tasks(
     """Run tasks in order (``jobs`` <= 1) or in worker processes; memory is bounded by jobs in flight.
 
     Workers are forked from a fork server that has the heavy modules imported (see
-    ``_worker_context``; :func:`start_workers_early` may have started it already). Small jobs
+    ``migrate.workers``; :func:`start_workers_early` may have started it already). Small jobs
     (:func:`uses_workers`) run in this process.
     """
     results: list[PartitionResult] = []
@@ -313,7 +308,7 @@ def run_tasks(
             results.append(r)
         return results
     try:
-        with ProcessPoolExecutor(max_workers=jobs, mp_context=_worker_context()) as pool:
+        with ProcessPoolExecutor(max_workers=jobs, mp_context=workers.context()) as pool:
             pending = [pool.submit(fn, t) for t in tasks]
             for fut in pending:
                 try:
