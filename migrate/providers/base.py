@@ -146,17 +146,3 @@ class Provider(ABC):
                 "(STORE_BACKEND_NOT_SUPPORTED_FOR_TWS); convert it to rocksdb instead",
                 where,
             )
-
-
-def batches_from_pairs(pairs: Iterable[tuple[bytes, bytes]], rows: int = BATCH_ROWS) -> Iterator[pa.RecordBatch]:
-    """Group (key, value) pairs into batches of :data:`ROW_SCHEMA`."""
-    keys: list[bytes] = []
-    values: list[bytes] = []
-    for k, v in pairs:
-        keys.append(k)
-        values.append(v)
-        if len(keys) >= rows:
-            yield pa.RecordBatch.from_arrays([pa.array(keys, pa.binary()), pa.array(values, pa.binary())], schema=ROW_SCHEMA)
-            keys, values = [], []
-    if keys:
-        yield pa.RecordBatch.from_arrays([pa.array(keys, pa.binary()), pa.array(values, pa.binary())], schema=ROW_SCHEMA)

@@ -18,7 +18,6 @@ from __future__ import annotations
 import os
 import shutil
 from collections.abc import Callable, Iterable, Iterator
-from itertools import islice
 
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -32,6 +31,13 @@ try:  # the compiled byte-wise key order (setup.py builds it when a C compiler i
     from . import _keysort
 except ImportError:  # not built: Arrow's sort
     _keysort = None
+try:  # the compiled collection of a scan's rows into Arrow buffers
+    from . import _rowpairs
+except ImportError:  # not built: Python lists and pa.array (_collect_py)
+    _rowpairs = None
+
+# A scan batch also stops once its keys or its values reach this many bytes (rows of large values).
+BATCH_BYTES = 64 << 20
 
 FORMAT_VERSION_CONF = "spark.sql.streaming.stateStore.rocksdb.formatVersion"
 COMPRESSION_CONF = "spark.sql.streaming.stateStore.rocksdb.compression"
@@ -138,26 +144,53 @@ def iterate(db_dir: str, where: str) -> Iterator[tuple[pa.Array, pa.Array]]:
         scan = ReadOptions()
         scan.fill_cache(False)
         scan.set_verify_checksums(True)
-        rows = db.items(read_opt=scan)
+        rows = iter(db.items(read_opt=scan))
         last: bytes | None = None
         while True:
-            keys: list[bytes] = []
-            values: list[bytes] = []
-            add_key, add_value = keys.append, values.append
             try:
-                for key, value in islice(rows, BATCH_ROWS):
-                    add_key(key)
-                    add_value(value)
+                keys, values = collect(rows, BATCH_ROWS, BATCH_BYTES)
             except Exception as exc:  # rocksdict raises plain Exception with the RocksDB status text
                 raise CorruptInput(f"RocksDB read failed: {exc}", where) from exc
-            if not keys:
+            if not len(keys):
                 break
-            last = keys[-1]
-            yield pa.array(keys, pa.binary()), pa.array(values, pa.binary())
+            last = keys[len(keys) - 1].as_py()
+            yield keys, values
         del rows
         _check_scan_complete(db, scan, last, where)
     finally:
         db.close()
+
+
+def collect(rows: Iterator[tuple[bytes, bytes]], limit: int, max_bytes: int) -> tuple[pa.Array, pa.Array]:
+    """Up to ``limit`` (key, value) pairs from ``rows`` as two binary arrays, stopping early once the
+    keys or the values taken reach ``max_bytes``; empty arrays when ``rows`` is exhausted. By the
+    compiled :mod:`._rowpairs` when it is built, else :func:`_collect_py` (the reference). Measured
+    on one 156k-key partition, alternating in one process: the scan with its batches built
+    0.47-0.54 -> 0.37-0.38 CPU us per row (the ``items()`` view alone: 0.33-0.35)."""
+    if _rowpairs is None:
+        return _collect_py(rows, limit, max_bytes)
+    count, key_offsets, keys, value_offsets, values = _rowpairs.collect(rows, limit, max_bytes)
+    return (
+        pa.Array.from_buffers(pa.binary(), count, [None, pa.py_buffer(key_offsets), pa.py_buffer(keys)]),
+        pa.Array.from_buffers(pa.binary(), count, [None, pa.py_buffer(value_offsets), pa.py_buffer(values)]),
+    )
+
+
+def _collect_py(rows: Iterator[tuple[bytes, bytes]], limit: int, max_bytes: int) -> tuple[pa.Array, pa.Array]:
+    """The reference of :func:`collect`: Python lists converted by ``pa.array``."""
+    keys: list[bytes] = []
+    values: list[bytes] = []
+    key_bytes = value_bytes = 0
+    while len(keys) < limit and key_bytes < max_bytes and value_bytes < max_bytes:
+        row = next(rows, None)
+        if row is None:
+            break
+        key, value = row
+        keys.append(key)
+        values.append(value)
+        key_bytes += len(key)
+        value_bytes += len(value)
+    return pa.array(keys, pa.binary()), pa.array(values, pa.binary())
 
 
 def _check_scan_complete(db, scan, last: bytes | None, where: str) -> None:
