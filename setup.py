@@ -3,8 +3,8 @@
 The extensions are optional: when they cannot be compiled (no C compiler, no Python headers) the
 install still succeeds and the tool uses the Python (numpy, Arrow) reference of each: the walk,
 gather and framing in migrate/providers/hdfs.py, Arrow's sort in migrate/providers/rocksdb_db.py,
-the dictionary-encoding replay in hdfs.py, the Python lists of a RocksDB scan in rocksdb_db.py
-(_collect_py), the numpy digest in migrate/digest.py and the Python
+the dictionary-encoding replay in hdfs.py, the Python lists of a RocksDB scan and put loop in
+rocksdb_db.py (_collect_py, _put_py), the numpy digest in migrate/digest.py and the Python
 per-chunk CRC loop in migrate/codecs/hadoop_crc.py (whose helper also needs zlib's headers).
 """
 
@@ -16,7 +16,7 @@ setup(
     ext_modules=[
         Extension("migrate.providers._framing", ["migrate/providers/_framing.c"], depends=[BINARY_H], optional=True),
         Extension("migrate.providers._keysort", ["migrate/providers/_keysort.c"], depends=[BINARY_H], optional=True),
-        Extension("migrate.providers._rowpairs", ["migrate/providers/_rowpairs.c"], optional=True),
+        Extension("migrate.providers._rowpairs", ["migrate/providers/_rowpairs.c"], depends=[BINARY_H], optional=True),
         Extension("migrate._digest", ["migrate/_digest.c"], depends=[BINARY_H], optional=True),
         Extension("migrate.codecs._chunkcrc", ["migrate/codecs/_chunkcrc.c"], libraries=["z"], optional=True),
     ]

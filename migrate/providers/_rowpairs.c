@@ -1,9 +1,11 @@
-/* migrate.providers._rowpairs: the rows of a RocksDB scan into Arrow buffers, compiled.
+/* migrate.providers._rowpairs: rows between Arrow buffers and the RocksDB binding, compiled.
  *
- * rocksdict (the binding) gives one Python bytes object per key and per value. Without this module
- * the tool appends each batch's keys and values to Python lists and converts them with pa.array:
- * migrate/providers/rocksdb_db.py:_collect_py, which stays the reference and the fallback when this
- * extension is not built (it is optional, see setup.py).
+ * rocksdict (the binding) gives and takes one Python bytes object per key and per value. Without
+ * this module the tool appends each batch of a scan to Python lists and converts them with
+ * pa.array, and writes a batch by prefixing its keys and values with Arrow, converting them with
+ * to_pylist and looping over them in Python: migrate/providers/rocksdb_db.py:_collect_py and
+ * _put_py, which stay the references and the fallbacks when this extension is not built (it is
+ * optional, see setup.py).
  *
  * collect(rows, limit, max_bytes) -> (count, key_offsets, keys, value_offsets, values)
  *     rows: an iterator of (key, value) 2-tuples of bytes (rocksdict's items() view).
@@ -16,8 +18,19 @@
  *     bytes, and OverflowError when a batch's keys or values would reach 2**31 bytes (the batch
  *     stops at max_bytes first, so only a row of 2**31 - max_bytes bytes or more gets there).
  *
+ * put(target, key_prefix, value_prefix, key_offsets, keys, key_offset, keys_large, value_offsets,
+ *     values, value_offset, values_large, count)
+ *     Does `target[key_prefix + key] = value_prefix + value` for each of `count` rows of an Arrow
+ *     binary key array and value array (their buffers and slice offsets, int32 or int64 offsets),
+ *     in order, each key and value a new bytes object: rocksdict's SstFileWriter.__setitem__ is
+ *     its put, and the prefixes are the encoding-version byte of the rows the engine writes. Both
+ *     arrays are checked first (_binary.h: ValueError before any row is put); an exception raised
+ *     by the target stops the loop and propagates unchanged.
+ *
  * Bounds: lengths and running totals are int64_t and checked against INT32_MAX before they become
- * offsets. The loop calls into Python (the iterator), so it holds the GIL throughout.
+ * offsets (collect); every element of an array put is shorter than 2**31 bytes (open_binary), so a
+ * prefixed one fits a Py_ssize_t. The loops call into Python (the iterator, the target), so they
+ * hold the GIL throughout.
  */
 
 #define PY_SSIZE_T_CLEAN
@@ -26,6 +39,8 @@
 #include <stdint.h>
 #include <stdlib.h>
 #include <string.h>
+
+#include "_binary.h"
 
 /* A growing byte buffer. */
 typedef struct {
@@ -138,15 +153,84 @@ done:
     return out;
 }
 
+PyDoc_STRVAR(put_doc,
+"put(target, key_prefix, value_prefix, key_offsets, keys, key_offset, keys_large, value_offsets,\n"
+"    values, value_offset, values_large, count)\n\n"
+"target[key_prefix + key] = value_prefix + value for each of count rows of an Arrow binary key\n"
+"array and value array, in order.");
+
+/* A new bytes object holding prefix then the n bytes at src; NULL with an exception set. */
+static PyObject *
+prefixed(const Py_buffer *prefix, const char *src, int64_t n)
+{
+    PyObject *out = PyBytes_FromStringAndSize(NULL, prefix->len + (Py_ssize_t)n);
+    if (out != NULL) {
+        char *w = PyBytes_AS_STRING(out);
+        if (prefix->len)
+            memcpy(w, prefix->buf, (size_t)prefix->len);
+        if (n)
+            memcpy(w + prefix->len, src, (size_t)n);
+    }
+    return out;
+}
+
+static PyObject *
+put(PyObject *module, PyObject *args)
+{
+    (void)module;
+    Py_ssize_t nargs = PyTuple_GET_SIZE(args);
+    if (nargs != 12) {
+        PyErr_Format(PyExc_TypeError, "put() takes 12 arguments (%zd given)", nargs);
+        return NULL;
+    }
+    PyObject *target = PyTuple_GET_ITEM(args, 0);
+    Py_buffer kp, vp;
+    if (PyObject_GetBuffer(PyTuple_GET_ITEM(args, 1), &kp, PyBUF_SIMPLE) < 0)
+        return NULL;
+    if (PyObject_GetBuffer(PyTuple_GET_ITEM(args, 2), &vp, PyBUF_SIMPLE) < 0) {
+        PyBuffer_Release(&kp);
+        return NULL;
+    }
+    PyObject *rest = PyTuple_GetSlice(args, 3, nargs);
+    binary_t keys, values;
+    Py_ssize_t count = 0;
+    int64_t key_bytes = 0, value_bytes = 0;
+    int opened = rest == NULL ? -1 : open_rows(rest, "OOnpOOnpn:put", &keys, &values, &count, &key_bytes, &value_bytes);
+    Py_XDECREF(rest);
+    int failed = opened < 0;
+    if (!failed) {
+        const char *kdata = (const char *)keys.dv.buf, *vdata = (const char *)values.dv.buf;
+        int64_t ks = offset_at(&keys, 0), vs = offset_at(&values, 0);
+        for (int64_t i = 0; i < (int64_t)count && !failed; i++) {
+            int64_t ke = offset_at(&keys, i + 1), ve = offset_at(&values, i + 1);
+            PyObject *k = prefixed(&kp, kdata + ks, ke - ks);
+            PyObject *v = k == NULL ? NULL : prefixed(&vp, vdata + vs, ve - vs);
+            failed = v == NULL || PyObject_SetItem(target, k, v) < 0;
+            Py_XDECREF(k);
+            Py_XDECREF(v);
+            ks = ke;
+            vs = ve;
+        }
+        release_binary(&values);
+        release_binary(&keys);
+    }
+    PyBuffer_Release(&vp);
+    PyBuffer_Release(&kp);
+    if (failed)
+        return NULL;
+    Py_RETURN_NONE;
+}
+
 static PyMethodDef rowpairs_methods[] = {
     {"collect", collect, METH_VARARGS, collect_doc},
+    {"put", put, METH_VARARGS, put_doc},
     {NULL, NULL, 0, NULL},
 };
 
 static struct PyModuleDef rowpairs_module = {
     PyModuleDef_HEAD_INIT,
     "migrate.providers._rowpairs",
-    "The rows of a RocksDB scan into Arrow buffers, compiled (see migrate.providers.rocksdb_db).",
+    "Rows between Arrow buffers and the RocksDB binding, compiled (see migrate.providers.rocksdb_db).",
     0,
     rowpairs_methods,
     NULL,

@@ -499,8 +499,10 @@ class RocksDBProvider(Provider):
         options = db_options(_engine_conf(ctx, families, where), where)
         folder = ScratchFolder("stateshift-rocksdb-w-")
         try:
-            encode = lambda b: codec.to_rocksdb(b.column("key"), b.column("value"), where)
-            runs, rows = sorted_runs(batches, encode, options, folder.path_for, self.run_bytes, where, count_internal)
+            encode = lambda b: codec.to_rocksdb_bare(b.column("key"), b.column("value"), where)
+            runs, rows = sorted_runs(
+                batches, encode, options, folder.path_for, self.run_bytes, where, count_internal, codec.write_prefixes()
+            )
             tmp = folder.path_for(0, True)
             checkpoint = build_db(runs, rows, options, tmp, where)
             written: list[WrittenFile] = []

@@ -26,6 +26,7 @@ from .. import scratch
 from ..buffers import binary_args, plain_binary
 from ..errors import CorruptInput, Unsupported
 from .base import BATCH_ROWS
+from .rocksdb_keys import prefix_each
 
 try:  # the compiled byte-wise key order (setup.py builds it when a C compiler is there)
     from . import _keysort
@@ -243,10 +244,13 @@ class ScratchFolder:
 
 def sorted_runs(
     batches: Iterable[pa.RecordBatch], encode: Encoder, options, folder: Callable[[int, bool], str], run_bytes: int,
-    where: str, on_keys: Callable[[pa.Array], None] = lambda keys: None,
+    where: str, on_keys: Callable[[pa.Array], None] = lambda keys: None, prefixes: tuple[bytes, bytes] = (b"", b""),
 ) -> tuple[list[str], int]:
     """Write the rows as sorted SST runs of about ``run_bytes`` each into ``folder(bytes, whole)``
-    (see :meth:`ScratchFolder.path_for`); return (paths, row count)."""
+    (see :meth:`ScratchFolder.path_for`); return (paths, row count). ``encode`` gives the keys and
+    values without ``prefixes`` (key prefix, value prefix; ``RowCodec.write_prefixes``), which
+    :func:`put_rows` puts in front as it writes: a prefix shared by every key changes neither their
+    order nor which are equal, so the order checks, the sort and ``on_keys`` see the bare keys."""
     runs: list[str] = []
     keys: list[pa.Array] = []
     values: list[pa.Array] = []
@@ -266,11 +270,11 @@ def sorted_runs(
         buffered += keys[-1].nbytes + values[-1].nbytes
         if buffered >= run_bytes:
             path = os.path.join(folder(buffered, False), f"run-{len(runs)}.sst")
-            runs.append(_write_run(keys, values, options, path, where))
+            runs.append(_write_run(keys, values, options, path, where, prefixes))
             keys, values, buffered = [], [], 0
     if keys:
         path = os.path.join(folder(buffered, not runs), f"run-{len(runs)}.sst")
-        runs.append(_write_run(keys, values, options, path, where))
+        runs.append(_write_run(keys, values, options, path, where, prefixes))
     return runs, rows
 
 
@@ -303,7 +307,9 @@ def strictly_increasing(keys: pa.Array) -> bool:
     return bool(pc.all(pc.less(keys.slice(0, len(keys) - 1), keys.slice(1))).as_py())
 
 
-def _write_run(keys: list[pa.Array], values: list[pa.Array], options, path: str, where: str) -> str:
+def _write_run(
+    keys: list[pa.Array], values: list[pa.Array], options, path: str, where: str, prefixes: tuple[bytes, bytes]
+) -> str:
     from rocksdict import SstFileWriter
 
     if _batches_increasing(keys):  # rows replayed from a heap map or read from RocksDB come sorted
@@ -319,11 +325,29 @@ def _write_run(keys: list[pa.Array], values: list[pa.Array], options, path: str,
     writer = SstFileWriter(options=options)
     writer.open(path)
     for k, v in parts:
-        for start in range(0, len(k), BATCH_ROWS):
-            for key, value in zip(k.slice(start, BATCH_ROWS).to_pylist(), v.slice(start, BATCH_ROWS).to_pylist()):
-                writer[key] = value
+        put_rows(writer, k, v, prefixes)
     writer.finish()
     return path
+
+
+def put_rows(target, keys: pa.Array, values: pa.Array, prefixes: tuple[bytes, bytes]) -> None:
+    """``target[key_prefix + key] = value_prefix + value`` for every row, in order (``target``: an
+    ``SstFileWriter``): by the compiled :mod:`._rowpairs` when it is built, else :func:`_put_py`
+    (the reference). Measured on 156k sorted rows (24-byte keys, 40-byte values), with the
+    version-byte prefix, alternating 20 times in one process: 0.83-0.85 -> 0.62-0.65 CPU us per
+    row (min-median) for the puts, the prefixes and the lists they no longer need."""
+    if _rowpairs is None or not (plain_binary(keys) and plain_binary(values)):
+        return _put_py(target, keys, values, prefixes)
+    _rowpairs.put(target, prefixes[0], prefixes[1], *binary_args(keys), *binary_args(values), len(keys))
+
+
+def _put_py(target, keys: pa.Array, values: pa.Array, prefixes: tuple[bytes, bytes]) -> None:
+    """The reference of :func:`put_rows`: the prefixes put in front by Arrow, a batch at a time
+    converted to Python lists."""
+    keys, values = prefix_each(keys, prefixes[0]), prefix_each(values, prefixes[1])
+    for start in range(0, len(keys), BATCH_ROWS):
+        for key, value in zip(keys.slice(start, BATCH_ROWS).to_pylist(), values.slice(start, BATCH_ROWS).to_pylist()):
+            target[key] = value
 
 
 def _batches_increasing(keys: list[pa.Array]) -> bool:

@@ -265,7 +265,7 @@ def decode_prefix_keys(keys: pa.Array, layouts: tuple[FieldLayout, ...], k: int,
 
 
 # ------------------------------------------------------------------------ plain rows and the codecs
-_VERSION = pa.scalar(bytes([ENCODING_VERSION]), pa.binary())
+_VERSION_BYTE = bytes([ENCODING_VERSION])
 _NO_SEPARATOR = pa.scalar(b"", pa.binary())
 
 
@@ -303,7 +303,14 @@ def strip_version_byte(arr: pa.Array, where: str) -> pa.Array:
 
 def add_version_byte(arr: pa.Array) -> pa.Array:
     """Prefix every element with the encoding-version byte 0x00."""
-    return pc.binary_join_element_wise(_VERSION, as_binary(arr), _NO_SEPARATOR)
+    return prefix_each(arr, _VERSION_BYTE)
+
+
+def prefix_each(arr: pa.Array, prefix: bytes) -> pa.Array:
+    """Every element of a binary array with ``prefix`` in front (the array as binary when it is empty)."""
+    if not prefix:
+        return as_binary(arr)
+    return pc.binary_join_element_wise(pa.scalar(prefix, pa.binary()), as_binary(arr), _NO_SEPARATOR)
 
 
 def family_ids(keys: pa.Array, where: str) -> np.ndarray:
@@ -348,9 +355,27 @@ class RowCodec:
         return strip_version_byte(keys, where), strip_version_byte(values, where)
 
     def to_rocksdb(self, keys: pa.Array, values: pa.Array, where: str) -> tuple[pa.Array, pa.Array]:
+        """The RocksDB keys and values of canonical rows: :meth:`to_rocksdb_bare` with
+        :meth:`write_prefixes` put in front."""
+        k, v = self.to_rocksdb_bare(keys, values, where)
+        key_prefix, value_prefix = self.write_prefixes()
+        return prefix_each(k, key_prefix), prefix_each(v, value_prefix)
+
+    def write_prefixes(self) -> tuple[bytes, bytes]:
+        """The bytes every RocksDB key and every value of this store starts with (the encoding-
+        version byte), which :meth:`to_rocksdb_bare` leaves for the writer to put in front: the
+        same for every row, so the rows sort and compare without them as they do with them."""
+        if self.known_families is not None:
+            return b"", b""
+        if self.prefix_layouts is not None:
+            return b"", _VERSION_BYTE
+        return _VERSION_BYTE, _VERSION_BYTE
+
+    def to_rocksdb_bare(self, keys: pa.Array, values: pa.Array, where: str) -> tuple[pa.Array, pa.Array]:
+        """The RocksDB keys and values of canonical rows without :meth:`write_prefixes`."""
         if self.known_families is not None:
             self.check_families(keys, where)
             return as_binary(keys), as_binary(values)
         if self.prefix_layouts is not None:
-            return encode_prefix_keys(keys, self.prefix_layouts, self.k, where), add_version_byte(values)
-        return add_version_byte(keys), add_version_byte(values)
+            return encode_prefix_keys(keys, self.prefix_layouts, self.k, where), as_binary(values)
+        return as_binary(keys), as_binary(values)

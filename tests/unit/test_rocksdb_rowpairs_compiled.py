@@ -1,9 +1,13 @@
-"""The compiled collection of a RocksDB scan's rows into Arrow buffers (``migrate.providers._rowpairs``)
-gives the batches of the Python reference (``rocksdb_db._collect_py``: lists and ``pa.array``) on
-hypothesis rows, at the row and byte bounds, and on a real RocksDB through rocksdict's ``items()``
-view; it passes the iterator's own exception through, refuses rows that are not pairs of bytes, and
-leaves the iterator where the batch stopped. test_rocksdb_scan*.py and the provider tests run the
-scan through whichever path is in use.
+"""The compiled hand-over of rows between Arrow buffers and rocksdict (``migrate.providers._rowpairs``).
+
+``collect`` gives the batches of the Python reference (``rocksdb_db._collect_py``: lists and
+``pa.array``) on hypothesis rows, at the row and byte bounds, and on a real RocksDB through
+rocksdict's ``items()`` view; it passes the iterator's own exception through, refuses rows that are
+not pairs of bytes, and leaves the iterator where the batch stopped. ``put`` makes the calls of the
+reference (``rocksdb_db._put_py``: Arrow prefixes, lists, a Python loop) on hypothesis rows and
+slices with every prefix, refuses bad buffers before its first call, stops at the target's
+exception, and writes the same SST file as the reference through rocksdict's ``SstFileWriter``.
+The provider tests run the scan and the write through whichever path is in use.
 
 Outside CI a missing extension skips these tests; under ``CI=true`` it fails them (as in
 test_digest_compiled.py).
@@ -20,8 +24,9 @@ from compiled_extensions import load
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from migrate.buffers import binary_args
 from migrate.providers import rocksdb_db
-from migrate.providers.rocksdb_db import _collect_py
+from migrate.providers.rocksdb_db import _collect_py, _put_py
 
 
 @pytest.fixture(scope="module")
@@ -154,3 +159,86 @@ def test_a_real_scan_through_both_paths(compiled: ModuleType, tmp_path, monkeypa
     assert len(ours) > 2000 // 333 + 1  # the byte bound cut some batches short
     assert dict((k, v) for keys, values in ours for k, v in zip(keys, values)) == rows
     assert [k for keys, _ in ours for k in keys] == sorted(rows)
+
+
+class Recorder:
+    """A put target that records every call, and raises on the call numbered ``fail_at``."""
+
+    def __init__(self, fail_at: int | None = None) -> None:
+        self.calls: list[tuple[bytes, bytes]] = []
+        self.fail_at = fail_at
+
+    def __setitem__(self, key: bytes, value: bytes) -> None:
+        if len(self.calls) == self.fail_at:
+            raise Boom(f"refused row {self.fail_at}")
+        assert type(key) is bytes and type(value) is bytes
+        self.calls.append((key, value))
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    rows=st.lists(st.tuples(st.binary(max_size=30), st.binary(max_size=60)), max_size=40),
+    cut=st.tuples(st.integers(0, 40), st.integers(0, 40)),
+    prefixes=st.sampled_from([(b"", b""), (b"\x00", b"\x00"), (b"", b"\x00"), (b"ab", b"")]),
+    key_type=st.sampled_from([pa.binary(), pa.large_binary()]),
+    value_type=st.sampled_from([pa.binary(), pa.large_binary()]),
+)
+def test_put_makes_the_calls_of_the_python_reference(compiled: ModuleType, rows, cut, prefixes, key_type, value_type) -> None:
+    keys = pa.array([k for k, _ in rows], key_type)
+    values = pa.array([v for _, v in rows], value_type)
+    start = min(cut[0], len(rows))
+    count = min(cut[1], len(rows) - start)
+    keys, values = keys.slice(start, count), values.slice(start, count)  # slices: a non-zero offset
+    ours, reference = Recorder(), Recorder()
+    compiled.put(ours, prefixes[0], prefixes[1], *binary_args(keys), *binary_args(values), count)
+    _put_py(reference, keys, values, prefixes)
+    assert ours.calls == reference.calls
+    assert ours.calls == [(prefixes[0] + k, prefixes[1] + v) for k, v in rows[start : start + count]]
+
+
+def test_put_stops_at_the_targets_exception(compiled: ModuleType) -> None:
+    keys = pa.array([b"a", b"b", b"c", b"d"], pa.binary())
+    target = Recorder(fail_at=2)
+    with pytest.raises(Boom, match="refused row 2"):
+        compiled.put(target, b"", b"", *binary_args(keys), *binary_args(keys), 4)
+    assert target.calls == [(b"a", b"a"), (b"b", b"b")]
+
+
+def test_put_refuses_bad_buffers_before_any_call(compiled: ModuleType) -> None:
+    keys = pa.array([b"ab", b"cd"], pa.binary())
+    _, offsets, data = keys.buffers()
+    target = Recorder()
+    with pytest.raises(ValueError, match="shorter than the slice"):  # three rows over two
+        compiled.put(target, b"", b"", offsets, data, 0, False, offsets, data, 0, False, 3)
+    with pytest.raises(ValueError, match="not those of a binary array"):  # offsets past the data
+        compiled.put(target, b"", b"", offsets, b"a", 0, False, offsets, data, 0, False, 2)
+    with pytest.raises(ValueError, match="negative"):
+        compiled.put(target, b"", b"", offsets, data, 0, False, offsets, data, 0, False, -1)
+    with pytest.raises(TypeError, match="12 arguments"):
+        compiled.put(target, b"", b"", offsets, data, 0, False)
+    with pytest.raises(TypeError):
+        compiled.put(target, None, b"", offsets, data, 0, False, offsets, data, 0, False, 2)  # a prefix is a buffer
+    assert target.calls == []
+
+
+def test_put_writes_the_sst_file_of_the_reference(compiled: ModuleType, tmp_path, monkeypatch) -> None:
+    """rocksdb_db.put_rows into rocksdict's SstFileWriter, once compiled and once the reference,
+    then each file ingested into its own RocksDB and scanned: the same rows, prefixed."""
+    from rocksdict import Options, Rdict, SstFileWriter
+
+    rows = sorted({b"key-%05d" % (i * 7919 % 10007): b"v" * (i % 50) for i in range(3000)}.items())
+    keys = pa.array([k for k, _ in rows], pa.binary())
+    values = pa.array([v for _, v in rows], pa.binary())
+    scanned = []
+    for name, module in (("compiled", compiled), ("reference", None)):
+        monkeypatch.setattr(rocksdb_db, "_rowpairs", module)
+        writer = SstFileWriter(options=Options(raw_mode=True))
+        writer.open(str(tmp_path / f"{name}.sst"))
+        for start in range(0, len(rows), 1000):  # three slices of the arrays
+            rocksdb_db.put_rows(writer, keys.slice(start, 1000), values.slice(start, 1000), (b"\x00", b"\x00"))
+        writer.finish()
+        db = Rdict(str(tmp_path / f"{name}-db"), options=Options(raw_mode=True))
+        db.ingest_external_file([str(tmp_path / f"{name}.sst")])
+        scanned.append(list(db.items()))
+        db.close()
+    assert scanned[0] == scanned[1] == [(b"\x00" + k, b"\x00" + v) for k, v in rows]
