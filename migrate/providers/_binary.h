@@ -1,4 +1,4 @@
-/* Shared by the compiled helpers (_framing.c, _keysort.c, ../_digest.c): one Arrow binary array's offsets
+/* Shared by the compiled helpers (_framing.c, _keysort.c, _rowpairs.c, ../_digest.c): one Arrow binary array's offsets
  * and data buffers, exported through the buffer protocol and checked before any use.
  *
  * open_binary checks every offset of the array's slice in 64-bit arithmetic (from 0 or more,

@@ -123,8 +123,8 @@ def iterate(db_dir: str, where: str) -> Iterator[tuple[pa.Array, pa.Array]]:
     The rows come from rocksdict's ``items()`` view, one Python call per row (the raw iterator
     needs four: valid, key, value, next). Measured on the provider's whole read of eight 10M-key
     benchmark partitions, the two loops alternating per partition three times in one process,
-    twice: 1.27-1.35 -> 1.10-1.17 CPU us per row. That view ends silently on an
-    unreadable block (seen: a flipped block yields half the keys, no error), so
+    twice: 1.27-1.35 -> 1.10-1.17 CPU us per row; its batches are built by :func:`collect`. That
+    view ends silently on an unreadable block (seen: a flipped block yields half the keys, no error), so
     :func:`_check_scan_complete` then asks a raw iterator for the key after the last one the view
     gave and for its status. Every block is read once, so the scan does not fill the block cache
     (measured: 1.05 -> 0.84 CPU us per key on one 156k-key partition) and verifies block checksums
