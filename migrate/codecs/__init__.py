@@ -33,14 +33,15 @@ from .zstd_stream import ZstdStream
 class Codec(Protocol):
     """One of the engine's compression streams.
 
-    ``decompress`` takes a whole stream and returns the raw bytes; it raises
+    ``decompress`` takes a whole stream and returns the raw bytes (``bytes``, or a ``bytearray``
+    where the codec grows its output in place: lz4); it raises
     :class:`~migrate.errors.CorruptInput` naming ``where`` on any problem (bad magic, checksum
     mismatch, truncation, trailing garbage). ``compress`` returns a stream the engine reads.
     """
 
     name: str
 
-    def decompress(self, data: bytes, where: str) -> bytes: ...
+    def decompress(self, data: bytes, where: str) -> bytes | bytearray: ...
 
     def compress(self, data: bytes) -> bytes: ...
 

@@ -63,10 +63,12 @@ class Lz4BlockStream:
         if not MIN_BLOCK_SIZE <= self.block_size <= MAX_BLOCK_SIZE:
             raise ValueError(f"lz4 block size must be in [{MIN_BLOCK_SIZE}, {MAX_BLOCK_SIZE}], got {self.block_size}")
 
-    def decompress(self, data: bytes, where: str) -> bytes:
+    def decompress(self, data: bytes, where: str) -> bytearray:
+        """The stream's bytes, each block checked, appended to one growing buffer as it is
+        decompressed (a list of blocks joined at the end held the output twice at its peak)."""
         view = memoryview(data)
         total = len(view)
-        parts: list[bytes] = []
+        out = bytearray()
         pos = 0
         ended = False
         while pos < total:
@@ -122,11 +124,11 @@ class Lz4BlockStream:
                     )
             if block_checksum(raw) != check:
                 raise CorruptInput(f"lz4 stream: checksum mismatch in block at offset {pos}", where)
-            parts.append(raw)
+            out += raw
             pos = body + comp_len
         if not ended:
             raise CorruptInput("lz4 stream: missing end mark (file truncated?)", where)
-        return b"".join(parts)
+        return out
 
     def compress(self, data: bytes) -> bytes:
         level = level_for(self.block_size)

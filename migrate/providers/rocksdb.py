@@ -362,7 +362,8 @@ class RocksDBProvider(Provider):
             verify_crc(raw, store.location.read_bytes(f"{_prefix(store)}{crc_name(name)}"), where)
         if checksum_name(name) in listing:
             verify_checksum_file(raw, store.location.read_bytes(f"{_prefix(store)}{checksum_name(name)}"), where)
-        return codec_of_stream(raw, ctx.codec, where).decompress(raw, where)  # older versions may use another codec
+        # older versions may use another codec; bytes, for the records' keys are hashed
+        return bytes(codec_of_stream(raw, ctx.codec, where).decompress(raw, where))
 
     # ---------------------------------------------------------------- reading
     def read(self, store: StoreDir, version: int, ctx: ReadContext) -> Iterator[pa.RecordBatch]:
