@@ -121,8 +121,26 @@ def _run(args: argparse.Namespace) -> int:
         ctx.progress.close()
 
 
+#: Arrow's memory pool for the tool's processes, unless the user's environment names one
+ARROW_POOL = "system"
+
+
+def prefer_arrow_pool(environ: dict[str, str] | Any = os.environ) -> None:
+    """Name :data:`ARROW_POOL` in ``ARROW_DEFAULT_MEMORY_POOL`` unless it is set already. Arrow reads
+    that variable once, when pyarrow is imported, so this runs before any import of pyarrow, and
+    the fork server and its workers inherit it. Arrow's own default, mimalloc, keeps the memory a
+    store partition freed for the next one: measured at 10M keys over 64 partitions, two
+    alternating pairs of whole commands with --jobs 2, the process tree's PSS went from 343-349 to
+    295-296 MB (convert heap map -> RocksDB) and from 374-378 to 305-312 MB (export), the largest
+    process from 176-178 to 132-144 MB, with CPU seconds within the runs' noise (29.5 / 31.8 ->
+    31.3 / 28.8; export 21.6 / 18.0 -> 21.7 / 20.9). Our buffers are few and large, which the
+    C library's allocator serves as well."""
+    environ.setdefault("ARROW_DEFAULT_MEMORY_POOL", ARROW_POOL)
+
+
 def main(argv: list[str] | None = None) -> int:
     argv = sys.argv[1:] if argv is None else list(argv)
+    prefer_arrow_pool()  # before the fork server starts and before pyarrow is imported
     if workers.likely_parallel(argv):  # before the imports of the parser, which take as long
         workers.start()
     try:
