@@ -19,6 +19,7 @@ import argparse
 import json
 import os
 import sys
+from collections.abc import MutableMapping
 from typing import Any
 
 from tqdm import tqdm
@@ -125,16 +126,16 @@ def _run(args: argparse.Namespace) -> int:
 ARROW_POOL = "system"
 
 
-def prefer_arrow_pool(environ: dict[str, str] | Any = os.environ) -> None:
+def prefer_arrow_pool(environ: MutableMapping[str, str] = os.environ) -> None:
     """Name :data:`ARROW_POOL` in ``ARROW_DEFAULT_MEMORY_POOL`` unless it is set already. Arrow reads
     that variable once, when pyarrow is imported, so this runs before any import of pyarrow, and
     the fork server and its workers inherit it. Arrow's own default, mimalloc, keeps the memory a
-    store partition freed for the next one: measured at 10M keys over 64 partitions, two
-    alternating pairs of whole commands with --jobs 2, the process tree's PSS went from 343-349 to
-    295-296 MB (convert heap map -> RocksDB) and from 374-378 to 305-312 MB (export), the largest
-    process from 176-178 to 132-144 MB, with CPU seconds within the runs' noise (29.5 / 31.8 ->
-    31.3 / 28.8; export 21.6 / 18.0 -> 21.7 / 20.9). Our buffers are few and large, which the
-    C library's allocator serves as well."""
+    store partition freed for the next one. Measured at 10M keys over 64 partitions, alternating
+    pairs of whole commands with --jobs 2 (``benchmarks/results/2026-12-03-ab-arrow-pool.md``):
+    the process tree's PSS 343-349 -> 295-296 MB (convert heap map -> RocksDB) and 374-389 ->
+    302-316 MB (export), the largest process 176-181 -> 132-144 MB; the convert's CPU within the
+    noise (2 % more in an in-process A/B of its stages), export about 6 % more CPU (17.5 / 17.7 ->
+    18.6 / 18.7 s). Our buffers are few and large; the C library's allocator hands freed ones back."""
     environ.setdefault("ARROW_DEFAULT_MEMORY_POOL", ARROW_POOL)
 
 
