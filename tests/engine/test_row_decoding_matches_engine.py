@@ -185,7 +185,7 @@ def _decompress(data: bytes, where: str) -> bytes:
         from migrate.codecs import codec_for
     except ImportError:
         return _lz4_block_stream(data, where)
-    return codec_for("lz4").decompress(data, where)
+    return bytes(codec_for("lz4").decompress(data, where))  # bytes: the records' keys are hashed below
 
 
 def _records(raw: bytes, where: str):
