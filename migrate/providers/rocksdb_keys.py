@@ -307,7 +307,8 @@ def add_version_byte(arr: pa.Array) -> pa.Array:
 
 
 def prefix_each(arr: pa.Array, prefix: bytes) -> pa.Array:
-    """Every element of a binary array with ``prefix`` in front (the array as binary when it is empty)."""
+    """Every element of a binary array with ``prefix`` in front (an empty prefix: the array as
+    binary, unchanged)."""
     if not prefix:
         return as_binary(arr)
     return pc.binary_join_element_wise(pa.scalar(prefix, pa.binary()), as_binary(arr), _NO_SEPARATOR)
