@@ -227,22 +227,14 @@ def resolve_versions(
     0.32-0.37 CPU us per record by dictionary encoding, 0.23-0.26 by the sort); else
     :func:`_resolve_versions_dictionary`, the reference.
     """
-    return _resolve(files, _last_writes_dictionary if _keysort is None else _last_writes_sorted, key_order)
+    return replay(combine_files(files), key_order)
 
 
 def _resolve_versions_dictionary(
     files: list[tuple[pa.Array, pa.Array, np.ndarray]], key_order: bool = False
 ) -> tuple[pa.Array, pa.Array]:
     """:func:`resolve_versions` without the compiled sort, and its reference."""
-    return _resolve(files, _last_writes_dictionary, key_order)
-
-
-def _resolve(
-    files: list[tuple[pa.Array, pa.Array, np.ndarray]], last_writes: Callable[[pa.Array], np.ndarray], key_order: bool
-) -> tuple[pa.Array, pa.Array]:
-    """The replay with ``last_writes`` (the position of each distinct key's last record, in
-    byte-wise order of the keys) over the records of all files as one array."""
-    return _replay(combine_files(files), last_writes, key_order)
+    return _replay(combine_files(files), _last_writes_dictionary, key_order)
 
 
 def combine_files(files: list[tuple[pa.Array, pa.Array, np.ndarray]]) -> tuple[pa.Array, pa.Array, np.ndarray]:
@@ -267,6 +259,8 @@ def replay(combined: tuple[pa.Array, pa.Array, np.ndarray], key_order: bool = Fa
 def _replay(
     combined: tuple[pa.Array, pa.Array, np.ndarray], last_writes: Callable[[pa.Array], np.ndarray], key_order: bool
 ) -> tuple[pa.Array, pa.Array]:
+    """The replay with ``last_writes`` (the position of each distinct key's last record, in
+    byte-wise order of the keys) over the combined records of all files."""
     keys, values, removed = combined
     if not len(keys):
         return keys, values
