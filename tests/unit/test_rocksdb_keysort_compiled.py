@@ -6,7 +6,7 @@ unsigned bytes in turn, a prefix first, the same order as RocksDB's BytewiseComp
 practice) and Arrow's ``pc.sort_indices`` (the fallback). Inputs: hypothesis lists built to hit
 the radix sort's corners (zero bytes, keys that are prefixes of others, long shared prefixes,
 lengths around the 8-byte steps, repeated keys, groups above and below the 32-key insertion
-sort), seeded random keys shaped like the engine's (a RocksDB version byte, UnsafeRow null bits,
+sort, keys over one shared template with a few varying bytes for the first level), seeded random keys shaped like the engine's (a RocksDB version byte, UnsafeRow null bits,
 field offsets, a little-endian long and a string), sliced arrays, large_binary, unaligned offset
 buffers, and offsets that do not describe an array (refused before any sort).
 
@@ -132,6 +132,48 @@ def test_offsets_that_describe_no_array_are_refused(keysort: ModuleType, offsets
     for function in (keysort.byte_order, keysort.last_of_each):
         with pytest.raises(ValueError, match=message):
             function(offsets.tobytes(), data, offset, count, False)
+
+
+@st.composite
+def _templated_keys(draw: st.DrawFn) -> list[bytes]:
+    """Keys over one shared template (as the engine's keys share their null bits and offsets):
+    a few byte positions vary over a small alphabet (so keys tie on the first level's 8 varying
+    positions, and repeat), every key at least the template's length, then a tail. More than 32
+    keys, so the first level (a pass over the bytes where keys differ) runs."""
+    template = draw(st.binary(min_size=0, max_size=70))
+    spots = draw(st.lists(st.integers(0, max(len(template) - 1, 0)), max_size=14)) if template else []
+    alphabet = st.sampled_from([0, 1, 0x7F, 0x80, 0xFF])
+    keys = []
+    for _ in range(draw(st.integers(33, 150))):
+        key = bytearray(template)
+        for spot in spots:
+            key[spot] = draw(alphabet)
+        keys.append(bytes(key) + draw(st.sampled_from([b"", b"\x00", b"a", b"\xff" * 9, b"ab" * 7])))
+    return keys
+
+
+@settings(max_examples=200, deadline=None)
+@given(_templated_keys())
+def test_keys_over_a_shared_template_sort_and_replay_right(keysort: ModuleType, keys: list[bytes]) -> None:
+    assert_byte_order(keys)
+    arr = pa.array(keys, pa.binary())
+    _, offsets, data = arr.buffers()
+    got = np.frombuffer(keysort.last_of_each(offsets, data, 0, len(arr), False), np.int64).tolist()
+    last = {k: i for i, k in enumerate(keys)}
+    assert got == [last[k] for k in sorted(last)]
+
+
+def test_the_byte_after_the_first_levels_eight_positions_still_decides(keysort: ModuleType) -> None:
+    """Nine varying positions in a row: keys that tie on the first eight differ on the ninth, and
+    on the bytes after it; with repeats, for the replay too."""
+    rng = random.Random(11)
+    keys = [bytes([rng.randrange(2)] * 8 + [rng.randrange(3), rng.randrange(3)]) + rng.choice([b"", b"z"]) for _ in range(300)]
+    assert_byte_order(keys)
+    arr = pa.array(keys, pa.binary())
+    _, offsets, data = arr.buffers()
+    got = np.frombuffer(keysort.last_of_each(offsets, data, 0, len(arr), False), np.int64).tolist()
+    last = {k: i for i, k in enumerate(keys)}
+    assert got == [last[k] for k in sorted(last)]
 
 
 @settings(max_examples=200, deadline=None)
