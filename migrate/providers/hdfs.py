@@ -227,51 +227,63 @@ def resolve_versions(
     0.32-0.37 CPU us per record by dictionary encoding, 0.23-0.26 by the sort); else
     :func:`_resolve_versions_dictionary`, the reference.
     """
-    return replay(combine_files(files), key_order)
+    return replay(combine_files(list(files)), key_order)
 
 
 def _resolve_versions_dictionary(
     files: list[tuple[pa.Array, pa.Array, np.ndarray]], key_order: bool = False
 ) -> tuple[pa.Array, pa.Array]:
     """:func:`resolve_versions` without the compiled sort, and its reference."""
-    return _replay(combine_files(files), _last_writes_dictionary, key_order)
+    return _replay(combine_files(list(files)), _last_writes_dictionary, key_order)
 
 
-def combine_files(files: list[tuple[pa.Array, pa.Array, np.ndarray]]) -> tuple[pa.Array, pa.Array, np.ndarray]:
-    """The (keys, values, removed) of every file's records, one after the other, as one array each.
-    :meth:`HDFSProvider.read` drops the files' own arrays right after this, before the replay
-    copies the survivors (measured together with the lz4 reader's in-place output, with Arrow's
-    ``system`` pool: one process reading, writing to RocksDB and reading back eight 10M-key
-    benchmark partitions peaked at 168 -> 155 MB)."""
+def combine_files(files: list[tuple[pa.Array, pa.Array, np.ndarray]]) -> list:
+    """The [keys, values, removed] of every file's records, one after the other, as one array
+    each. ``files`` is emptied, and each file's keys are let go once the keys are joined, before
+    the values are: with no other holder, the per-file arrays and the joined copy are never all
+    alive at once. Measured on one 10M-key benchmark partition read in key order (Arrow's
+    ``system`` pool, its ``max_memory``): 38.7 -> 28.6 MB, the peak now about one copy of the
+    records plus one side (keys or values) of them. Whole commands at 10M keys, two alternating
+    pairs (``benchmarks/results/2026-12-03-ab-replay-memory.md``): the process tree 309-310 ->
+    280-296 MB (export) and 291-292 -> 265-280 MB (convert to RocksDB), CPU within the noise."""
     if not files:
-        return pa.array([], pa.binary()), pa.array([], pa.binary()), np.zeros(0, dtype=bool)
+        return [pa.array([], pa.binary()), pa.array([], pa.binary()), np.zeros(0, dtype=bool)]
     key_type = pa.large_binary() if any(pa.types.is_large_binary(f[0].type) for f in files) else pa.binary()
-    keys = pa.chunked_array([f[0].cast(key_type) for f in files], key_type).combine_chunks()
-    values = pa.chunked_array([f[1].cast(key_type) for f in files], key_type).combine_chunks()
-    return keys, values, np.concatenate([f[2] for f in files])
+    per_file_keys = [f[0] for f in files]
+    per_file_values = [f[1] for f in files]
+    removed = np.concatenate([f[2] for f in files])
+    files.clear()
+    keys = pa.chunked_array([k.cast(key_type) for k in per_file_keys], key_type).combine_chunks()
+    per_file_keys.clear()
+    values = pa.chunked_array([v.cast(key_type) for v in per_file_values], key_type).combine_chunks()
+    per_file_values.clear()
+    return [keys, values, removed]
 
 
-def replay(combined: tuple[pa.Array, pa.Array, np.ndarray], key_order: bool = False) -> tuple[pa.Array, pa.Array]:
-    """:func:`resolve_versions` over records already combined by :func:`combine_files`."""
+def replay(combined: list, key_order: bool = False) -> tuple[pa.Array, pa.Array]:
+    """:func:`resolve_versions` over records already combined by :func:`combine_files` (the list
+    is emptied)."""
     return _replay(combined, _last_writes_dictionary if _keysort is None else _last_writes_sorted, key_order)
 
 
-def _replay(
-    combined: tuple[pa.Array, pa.Array, np.ndarray], last_writes: Callable[[pa.Array], np.ndarray], key_order: bool
-) -> tuple[pa.Array, pa.Array]:
+def _replay(combined: list, last_writes: Callable[[pa.Array], np.ndarray], key_order: bool) -> tuple[pa.Array, pa.Array]:
     """The replay with ``last_writes`` (the position of each distinct key's last record, in
-    byte-wise order of the keys) over the combined records of all files."""
+    byte-wise order of the keys) over the combined records of all files. ``combined`` is emptied:
+    the joined keys go once the survivors' keys are copied, before the values are."""
     keys, values, removed = combined
+    combined.clear()
     if not len(keys):
         return keys, values
     survivors = last_writes(keys)
     survivors = survivors[~removed[survivors]]
+    del removed
     if not key_order:
         survivors = np.sort(survivors)
     if len(survivors) == len(keys) and (len(keys) < 2 or bool((np.diff(survivors) > 0).all())):
         return keys, values  # every record survives, and the files hold them in the order asked for
     order = pa.array(survivors)
-    return keys.take(order), values.take(order)
+    keys = keys.take(order)
+    return keys, values.take(order)
 
 
 def _last_writes_sorted(keys: pa.Array) -> np.ndarray:
@@ -413,13 +425,9 @@ class HDFSProvider(Provider):
         listing = self._listing(store, ctx)
         names = self.chain(store, version, listing)
         files = []
-        for name in names:
-            data = self.read_file(store, name, ctx.codec, listing)
-            files.append(record_arrays(data, store.describe(name), allow_removals=name.endswith(".delta")))
-        combined = combine_files(files)
-        del files  # the per-file arrays, before the replay's copy of the survivors
-        keys, values = replay(combined, ctx.key_order)
-        del combined
+        for name in names:  # each decompressed file only until its records are copied out
+            files.append(record_arrays(self.read_file(store, name, ctx.codec, listing), store.describe(name), allow_removals=name.endswith(".delta")))
+        keys, values = replay(combine_files(files), ctx.key_order)  # both empty what they are given
         for i in range(0, len(keys), BATCH_ROWS):
             k, v = keys.slice(i, BATCH_ROWS), values.slice(i, BATCH_ROWS)
             if k.type != pa.binary():
