@@ -425,8 +425,10 @@ class HDFSProvider(Provider):
         listing = self._listing(store, ctx)
         names = self.chain(store, version, listing)
         files = []
-        for name in names:  # each decompressed file only until its records are copied out
-            files.append(record_arrays(self.read_file(store, name, ctx.codec, listing), store.describe(name), allow_removals=name.endswith(".delta")))
+        for name in names:  # each decompressed file is held only until its records are copied out
+            data = self.read_file(store, name, ctx.codec, listing)
+            files.append(record_arrays(data, store.describe(name), allow_removals=name.endswith(".delta")))
+            del data
         keys, values = replay(combine_files(files), ctx.key_order)  # both empty what they are given
         for i in range(0, len(keys), BATCH_ROWS):
             k, v = keys.slice(i, BATCH_ROWS), values.slice(i, BATCH_ROWS)
