@@ -281,8 +281,8 @@ first_level(const keys_t *k, item_t *items, item_t *t, int64_t n, unsigned char 
 }
 
 /* Sort items[0..n) (pos = 0..n-1 in order, chunk free) byte-wise; t is scratch room for n items;
- * starts as for first_level (left as it is for n <= SMALL_GROUP). 0 on success, -1 when out of memory. Needs no GIL (PyMem_Raw
- * allocator only). */
+ * starts as for first_level (left as it is for n <= SMALL_GROUP: no first level). 0 on success,
+ * -1 when out of memory. Needs no GIL (PyMem_Raw allocator only). */
 static int
 sort_keys(const keys_t *k, item_t *items, item_t *t, int64_t n, unsigned char *starts)
 {
