@@ -27,7 +27,6 @@ ROOT = Path(__file__).resolve().parents[2]
 SCRIPT = r"""
 import json, numpy as np, pyarrow as pa
 from migrate.providers.hdfs import combine_files, replay
-rng = np.random.default_rng(5)
 def arrays(n, width, seed):
     data = np.random.default_rng(seed).integers(0, 256, n * width, dtype=np.uint8).tobytes()
     offsets = np.arange(0, n * width + 1, width, dtype=np.int32)

@@ -1,14 +1,15 @@
 """The compiled byte-wise key order (``migrate.providers._keysort``) sorts exactly as RocksDB's
 default comparator orders keys.
 
-References outside the extension: Python's ``sorted`` of the keys as ``bytes`` (byte-wise:
-unsigned bytes in turn, a prefix first, the same order as RocksDB's BytewiseComparator; common
-practice) and Arrow's ``pc.sort_indices`` (the fallback). Inputs: hypothesis lists built to hit
-the radix sort's corners (zero bytes, keys that are prefixes of others, long shared prefixes,
-lengths around the 8-byte steps, repeated keys, groups above and below the 32-key insertion
-sort, keys over one shared template with a few varying bytes for the first level), seeded random keys shaped like the engine's (a RocksDB version byte, UnsafeRow null bits,
-field offsets, a little-endian long and a string), sliced arrays, large_binary, unaligned offset
-buffers, and offsets that do not describe an array (refused before any sort).
+References outside the extension: Python's ``sorted`` of the keys as ``bytes`` (byte-wise: unsigned
+bytes in turn, a prefix first, the same order as RocksDB's BytewiseComparator; common practice) and
+Arrow's ``pc.sort_indices`` (the fallback). Inputs: hypothesis lists built to hit the radix sort's
+corners (zero bytes, keys that are prefixes of others, long shared prefixes, lengths around the
+8-byte steps, repeated keys, groups above and below the 32-key insertion sort, keys over one shared
+template with a few varying bytes for the first level), seeded random keys shaped like the engine's
+(a RocksDB version byte, UnsafeRow null bits, field offsets, a little-endian long and a string),
+sliced arrays, large_binary, unaligned offset buffers, and offsets that do not describe an array
+(refused before any sort).
 
 Outside CI a missing extension skips these tests; under ``CI=true`` it fails them (as in
 test_hdfs_framing_compiled.py).
@@ -134,6 +135,16 @@ def test_offsets_that_describe_no_array_are_refused(keysort: ModuleType, offsets
             function(offsets.tobytes(), data, offset, count, False)
 
 
+def assert_last_of_each(keysort: ModuleType, keys: list[bytes]) -> None:
+    """``last_of_each`` against a dict built in order (a later position overwrites an earlier one),
+    in byte-wise order of the keys."""
+    arr = pa.array(keys, pa.binary())
+    _, offsets, data = arr.buffers()
+    got = np.frombuffer(keysort.last_of_each(offsets, data, 0, len(arr), False), np.int64).tolist()
+    last = {k: i for i, k in enumerate(keys)}
+    assert got == [last[k] for k in sorted(last)]
+
+
 @st.composite
 def _templated_keys(draw: st.DrawFn) -> list[bytes]:
     """Keys over one shared template (as the engine's keys share their null bits and offsets):
@@ -156,11 +167,7 @@ def _templated_keys(draw: st.DrawFn) -> list[bytes]:
 @given(_templated_keys())
 def test_keys_over_a_shared_template_sort_and_replay_right(keysort: ModuleType, keys: list[bytes]) -> None:
     assert_byte_order(keys)
-    arr = pa.array(keys, pa.binary())
-    _, offsets, data = arr.buffers()
-    got = np.frombuffer(keysort.last_of_each(offsets, data, 0, len(arr), False), np.int64).tolist()
-    last = {k: i for i, k in enumerate(keys)}
-    assert got == [last[k] for k in sorted(last)]
+    assert_last_of_each(keysort, keys)
 
 
 def test_the_byte_after_the_first_levels_eight_positions_still_decides(keysort: ModuleType) -> None:
@@ -169,11 +176,7 @@ def test_the_byte_after_the_first_levels_eight_positions_still_decides(keysort: 
     rng = random.Random(11)
     keys = [bytes([rng.randrange(2)] * 8 + [rng.randrange(3), rng.randrange(3)]) + rng.choice([b"", b"z"]) for _ in range(300)]
     assert_byte_order(keys)
-    arr = pa.array(keys, pa.binary())
-    _, offsets, data = arr.buffers()
-    got = np.frombuffer(keysort.last_of_each(offsets, data, 0, len(arr), False), np.int64).tolist()
-    last = {k: i for i, k in enumerate(keys)}
-    assert got == [last[k] for k in sorted(last)]
+    assert_last_of_each(keysort, keys)
 
 
 @settings(max_examples=200, deadline=None)
