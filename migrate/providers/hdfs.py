@@ -253,11 +253,15 @@ def combine_files(files: list[tuple[pa.Array, pa.Array, np.ndarray]]) -> list:
     per_file_values = [f[1] for f in files]
     removed = np.concatenate([f[2] for f in files])
     files.clear()
-    keys = pa.chunked_array([k.cast(key_type) for k in per_file_keys], key_type).combine_chunks()
-    per_file_keys.clear()
-    values = pa.chunked_array([v.cast(key_type) for v in per_file_values], key_type).combine_chunks()
-    per_file_values.clear()
+    keys, values = _join(per_file_keys, key_type), _join(per_file_values, key_type)
     return [keys, values, removed]
+
+
+def _join(arrays: list[pa.Array], binary: pa.DataType) -> pa.Array:
+    """One array of ``arrays`` in order; ``arrays`` is emptied once the copy exists."""
+    joined = pa.chunked_array([a.cast(binary) for a in arrays], binary).combine_chunks()
+    arrays.clear()
+    return joined
 
 
 def replay(combined: list, key_order: bool = False) -> tuple[pa.Array, pa.Array]:
