@@ -16,6 +16,7 @@ decides for certain (``commands.common.start_workers_early``) and stops a server
 from __future__ import annotations
 
 import os
+import threading
 from multiprocessing import get_all_start_methods, get_context
 from typing import Any
 
@@ -40,9 +41,15 @@ MIN_TASKS = 8
 MIN_BYTES = 16 << 20
 
 
+#: the thread :func:`stop_soon` left waiting for a stopping server, until :func:`stop` joins it
+_stopping: threading.Thread | None = None
+
+
 def context() -> Any:
     """The process start method for workers: the fork server with :data:`PRELOAD`, else spawn
-    where fork servers do not exist."""
+    where fork servers do not exist. A server :func:`stop_soon` is stopping has stopped once this
+    returns, so a pool made with this context starts a new one rather than sending work to it."""
+    _join_stopping()
     if "forkserver" not in get_all_start_methods():
         return get_context("spawn")
     ctx = get_context("forkserver")
@@ -62,7 +69,33 @@ def start() -> None:
 
 def stop() -> None:
     """Stop the fork server this process started, if any, and wait for it (its workers' CPU time
-    and memory are then accounted to this process, as spawned children's are)."""
+    and memory are then accounted to this process, as spawned children's are), and for one
+    :func:`stop_soon` is stopping."""
+    _join_stopping()
+    _stop_now()
+
+
+def stop_soon() -> None:
+    """Stop the fork server this process started, if any, in a thread, and return at once: the
+    server's exit (its interpreter's teardown of pyarrow, numpy and rocksdict; measured 0.13-0.17
+    s of wall clock after a pool of two workers) overlaps what the command does next. :func:`stop`,
+    which the command line calls on every way out, waits for it, so the server is still waited
+    for before the command ends."""
+    global _stopping
+    _join_stopping()
+    if running():
+        _stopping = threading.Thread(target=_stop_now, name="stateshift-stop-fork-server")
+        _stopping.start()
+
+
+def _join_stopping() -> None:
+    global _stopping
+    if _stopping is not None:
+        _stopping.join()
+        _stopping = None
+
+
+def _stop_now() -> None:
     from multiprocessing import forkserver
 
     stop_server = getattr(getattr(forkserver, "_forkserver", None), "_stop", None)  # CPython >= 3.9
@@ -71,9 +104,10 @@ def stop() -> None:
 
 
 def running() -> bool:
+    """Whether a fork server this process started is up (one :func:`stop_soon` is stopping is not)."""
     from multiprocessing import forkserver
 
-    return getattr(getattr(forkserver, "_forkserver", None), "_forkserver_pid", None) is not None
+    return _stopping is None and getattr(getattr(forkserver, "_forkserver", None), "_forkserver_pid", None) is not None
 
 
 def likely_parallel(argv: list[str]) -> bool:

@@ -280,11 +280,12 @@ def start_workers_early(jobs: int, units: list[Any]) -> None:
     """Start the workers' fork server now if :func:`run_tasks` will use it for these units, so its
     imports (about a CPU second) overlap the checks and planning before the pool starts; stop one
     the command line started on a guess (``migrate.workers.likely_parallel``) if it will not.
-    :func:`run_tasks`, or :func:`stop_workers` on any other way out, stops it."""
+    :func:`run_tasks`, or :func:`stop_workers` on any other way out, stops it (one stopped here
+    on a wrong guess is waited for by :func:`stop_workers`)."""
     if uses_workers(jobs, units):
         workers.start()
     else:
-        workers.stop()
+        workers.stop_soon()  # a server still importing only notices once it has finished
 
 
 def run_tasks(
@@ -301,7 +302,7 @@ def run_tasks(
     """
     results: list[PartitionResult] = []
     if not uses_workers(jobs, tasks):
-        workers.stop()  # one started on a guess
+        workers.stop_soon()  # one started on a guess
         for t in tasks:
             r = fn(t)
             on_done(r)
@@ -320,16 +321,16 @@ def run_tasks(
                 on_done(r)
                 results.append(r)
     finally:
-        stop_workers()
+        workers.stop_soon()  # its exit overlaps the command's next steps; stop_workers waits for it
     return results
 
 
 def stop_workers() -> None:
-    """Stop the fork server this process started, if any, and wait for it, so its workers' CPU time
-    and memory are accounted to this process like spawned children's (``wait4``/``RUSAGE_CHILDREN``,
-    which the benchmarks read); the next ``run_tasks`` starts a new one. ``run_tasks`` calls it after
-    its pool, the CLI on every way out (so a server started early is never left behind by an error
-    before the pool)."""
+    """Stop the fork server this process started, if any, and wait for it (and for one
+    ``run_tasks`` left stopping), so its workers' CPU time and memory are accounted to this process
+    like spawned children's (``wait4``/``RUSAGE_CHILDREN``, which the benchmarks read); the next
+    ``run_tasks`` starts a new one. The CLI calls it on every way out (so a server started early is
+    never left behind by an error before the pool)."""
     workers.stop()
 
 

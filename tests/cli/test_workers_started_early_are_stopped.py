@@ -5,6 +5,7 @@ usage error."""
 
 from __future__ import annotations
 
+import os
 import shutil
 from multiprocessing import forkserver
 from pathlib import Path
@@ -59,7 +60,26 @@ def test_a_server_started_on_a_guess_is_stopped_when_the_plan_is_small():
     workers.start()
     assert server_pid() is not None
     common.start_workers_early(2, units(3, 10))  # the plan: a small job, run in this process
+    assert not workers.running()  # stopping, in a thread
+    common.stop_workers()  # the command line's way out waits for it
     assert server_pid() is None
+
+
+def test_a_pool_right_after_a_stop_soon_gets_a_new_server():
+    """``run_tasks`` stops its server in a thread; a second pool made at once must not send its work
+    to that server, which is about to exit, but to a new one."""
+    from concurrent.futures import ProcessPoolExecutor
+
+    pids = []
+    for _ in range(2):
+        with ProcessPoolExecutor(1, mp_context=workers.context()) as pool:
+            assert pool.submit(os.getpid).result(timeout=120) != os.getpid()
+        pids.append(server_pid())
+        workers.stop_soon()
+        assert not workers.running()
+    assert None not in pids and pids[0] != pids[1]
+    workers.stop()
+    assert server_pid() is None and not workers.running()
 
 
 def _checkpoint(root: Path, partitions: int, size: int = 10) -> Path:
