@@ -42,7 +42,7 @@ MIN_BYTES = 16 << 20
 
 
 #: the thread :func:`stop_soon` left waiting for a stopping server, until :func:`stop` joins it
-_stopping: threading.Thread | None = None
+_stopping: _Stopping | None = None
 
 
 def context() -> Any:
@@ -84,15 +84,32 @@ def stop_soon() -> None:
     global _stopping
     _join_stopping()
     if running():
-        _stopping = threading.Thread(target=_stop_now, name="stateshift-stop-fork-server")
+        _stopping = _Stopping()
         _stopping.start()
+
+
+class _Stopping(threading.Thread):
+    """:func:`_stop_now` in a thread; an error it meets is raised again by :func:`_join_stopping`,
+    in the thread that waits for it, as :func:`stop` would have raised it."""
+
+    def __init__(self) -> None:
+        super().__init__(name="stateshift-stop-fork-server")
+        self.error: BaseException | None = None
+
+    def run(self) -> None:
+        try:
+            _stop_now()
+        except BaseException as exc:  # noqa: BLE001 - handed to the joining thread
+            self.error = exc
 
 
 def _join_stopping() -> None:
     global _stopping
     if _stopping is not None:
-        _stopping.join()
-        _stopping = None
+        waiting, _stopping = _stopping, None
+        waiting.join()
+        if waiting.error is not None:
+            raise waiting.error
 
 
 def _stop_now() -> None:

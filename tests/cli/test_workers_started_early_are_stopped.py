@@ -82,6 +82,24 @@ def test_a_pool_right_after_a_stop_soon_gets_a_new_server():
     assert server_pid() is None and not workers.running()
 
 
+def test_an_error_met_stopping_in_the_thread_is_raised_by_stop(monkeypatch: pytest.MonkeyPatch):
+    workers.start()
+    real = workers._stop_now
+    calls = []
+
+    def stop_then_fail() -> None:  # fails the first time only: in the thread
+        calls.append(1)
+        real()
+        if len(calls) == 1:
+            raise OSError("the server could not be reaped")
+
+    monkeypatch.setattr(workers, "_stop_now", stop_then_fail)
+    workers.stop_soon()  # returns at once; the thread meets the error
+    with pytest.raises(OSError, match="could not be reaped"):
+        workers.stop()  # the command line's way out: the error is not lost in the thread
+    assert server_pid() is None
+
+
 def _checkpoint(root: Path, partitions: int, size: int = 10) -> Path:
     for p in range(partitions):
         folder = root / "state" / "0" / str(p)
