@@ -203,3 +203,32 @@ def test_workers_start_with_the_heavy_modules_imported():
     assert set(wanted) <= set(workers.PRELOAD)
     with ProcessPoolExecutor(1, mp_context=workers.context()) as pool:
         assert pool.submit(imported_before, wanted).result(timeout=120) == wanted
+
+
+def test_the_command_line_reports_a_server_that_did_not_stop_in_one_line(tmp_path: Path, monkeypatch, capsys):
+    """After the pool the server stops in a thread; an error met there reaches the command line's
+    way out, which names it in one line and keeps the command's own exit code (the target was
+    already published: the server holds no state)."""
+    from migrate.cli import main
+
+    monkeypatch.setattr(common, "PARALLEL_MIN_TASKS", 1)
+    src = tmp_path / "src"
+    shutil.copytree(DEMO / "greenhouse_totals_hdfs", src)
+    real = workers._stop_now
+    calls = []
+
+    def stop_then_fail() -> None:  # the first stop is the pool's, in the thread
+        calls.append(1)
+        real()
+        if len(calls) == 1:
+            raise OSError("no child process")
+
+    monkeypatch.setattr(workers, "_stop_now", stop_then_fail)
+    code = main(["convert", str(src), str(tmp_path / "dst"), "--to", "rocksdb", "--jobs", "2", "--force", "--json"])
+    err = capsys.readouterr().err
+    assert code == 0, err
+    assert len(calls) >= 1  # the pool ran and its server was stopped
+    lines = [line for line in err.splitlines() if "fork server" in line]
+    assert lines == ["stateshift: warning: the workers' fork server did not stop cleanly: OSError: no child process"]
+    assert server_pid() is None
+
