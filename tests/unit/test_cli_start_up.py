@@ -12,7 +12,8 @@ from migrate import cli
 
 
 def python(code: str, **env: str) -> str:
-    environ = {k: v for k, v in os.environ.items() if k != "OPENBLAS_NUM_THREADS"}
+    # OpenBLAS also reads these two when OPENBLAS_NUM_THREADS is unset (from memory: its thread-count lookup)
+    environ = {k: v for k, v in os.environ.items() if k not in ("OPENBLAS_NUM_THREADS", "GOTO_NUM_THREADS", "OMP_NUM_THREADS")}
     environ.update(env)
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=environ, timeout=300)
     assert done.returncode == 0, done.stderr
