@@ -231,4 +231,3 @@ def test_the_command_line_reports_a_server_that_did_not_stop_in_one_line(tmp_pat
     lines = [line for line in err.splitlines() if "fork server" in line]
     assert lines == ["stateshift: warning: the workers' fork server did not stop cleanly: OSError: no child process"]
     assert server_pid() is None
-

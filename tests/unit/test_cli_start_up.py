@@ -8,6 +8,8 @@ import os
 import subprocess
 import sys
 
+import pytest
+
 from migrate import cli
 
 
@@ -43,8 +45,6 @@ def _threads_after_numpy(prelude: str) -> int:
 
 def test_numpy_starts_no_thread_pool_after_the_cli_named_one_thread() -> None:
     if not os.path.isdir("/proc/self/task") or (os.cpu_count() or 1) < 2:
-        import pytest
-
         pytest.skip("counts threads in /proc on a machine with at least two cores")
     without = _threads_after_numpy("")
     with_it = _threads_after_numpy("from migrate import cli\ncli.no_blas_pool()\n")
@@ -53,7 +53,7 @@ def test_numpy_starts_no_thread_pool_after_the_cli_named_one_thread() -> None:
     assert without > with_it
 
 
-def test_main_names_the_count_and_the_workers_inherit_it(monkeypatch) -> None:
+def test_main_names_the_count_and_the_workers_inherit_it(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setenv("OPENBLAS_NUM_THREADS", "placeholder")  # so the teardown restores what was there
     monkeypatch.delenv("OPENBLAS_NUM_THREADS")
     try:
