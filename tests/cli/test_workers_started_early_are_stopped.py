@@ -82,18 +82,25 @@ def test_a_pool_right_after_a_stop_soon_gets_a_new_server():
     assert server_pid() is None and not workers.running()
 
 
-def test_an_error_met_stopping_in_the_thread_is_raised_by_stop(monkeypatch: pytest.MonkeyPatch):
-    workers.start()
+def fail_the_first_stop(monkeypatch: pytest.MonkeyPatch, message: str) -> list[int]:
+    """Make the first stop of the fork server stop it and then raise OSError(message); the list
+    returned counts the stops."""
     real = workers._stop_now
-    calls = []
+    calls: list[int] = []
 
-    def stop_then_fail() -> None:  # fails the first time only: in the thread
+    def stop_then_fail() -> None:
         calls.append(1)
         real()
         if len(calls) == 1:
-            raise OSError("the server could not be reaped")
+            raise OSError(message)
 
     monkeypatch.setattr(workers, "_stop_now", stop_then_fail)
+    return calls
+
+
+def test_an_error_met_stopping_in_the_thread_is_raised_by_stop(monkeypatch: pytest.MonkeyPatch):
+    workers.start()
+    fail_the_first_stop(monkeypatch, "the server could not be reaped")
     workers.stop_soon()  # returns at once; the thread meets the error
     with pytest.raises(OSError, match="could not be reaped"):
         workers.stop()  # the command line's way out: the error is not lost in the thread
@@ -214,16 +221,7 @@ def test_the_command_line_reports_a_server_that_did_not_stop_in_one_line(tmp_pat
     monkeypatch.setattr(common, "PARALLEL_MIN_TASKS", 1)
     src = tmp_path / "src"
     shutil.copytree(DEMO / "greenhouse_totals_hdfs", src)
-    real = workers._stop_now
-    calls = []
-
-    def stop_then_fail() -> None:  # the first stop is the pool's, in the thread
-        calls.append(1)
-        real()
-        if len(calls) == 1:
-            raise OSError("no child process")
-
-    monkeypatch.setattr(workers, "_stop_now", stop_then_fail)
+    calls = fail_the_first_stop(monkeypatch, "no child process")  # the first stop is the pool's, in the thread
     code = main(["convert", str(src), str(tmp_path / "dst"), "--to", "rocksdb", "--jobs", "2", "--force", "--json"])
     err = capsys.readouterr().err
     assert code == 0, err
