@@ -7,16 +7,23 @@
  * _put_py, which stay the references and the fallbacks when this extension is not built (it is
  * optional, see setup.py).
  *
- * collect(rows, limit, max_bytes) -> (count, key_offsets, keys, value_offsets, values)
+ * collect(rows, limit, max_bytes, key_prefix=b"", value_prefix=b"")
+ *         -> (count, key_offsets, keys, value_offsets, values, stray)
  *     rows: an iterator of (key, value) 2-tuples of bytes (rocksdict's items() view).
  *     Takes up to `limit` rows, and stops early once the keys or the values of the rows taken
  *     reach `max_bytes` bytes, so a batch of large rows stays bounded. Returns the keys and the
- *     values, each as the int32 offsets (native byte order) and the data of an Arrow binary array.
- *     A count below `limit` does not mean the iterator is exhausted; a count of 0 does (with
- *     limit > 0). An exception raised by the iterator propagates unchanged (rows it gave before
- *     are lost: the caller fails the read). Raises TypeError for an item that is not a 2-tuple of
+ *     values, each as the int32 offsets (native byte order) and the data of an Arrow binary array,
+ *     each key without key_prefix and each value without value_prefix (the encoding-version byte
+ *     the engine puts in front; stripping it here spares a sliced copy of every batch). A row whose
+ *     key or value does not start with its prefix ends the batch without being taken and is
+ *     returned as `stray` (None otherwise): the caller reports it. A count below `limit` with no
+ *     stray does not mean the iterator is exhausted; a count of 0 does (with limit > 0 and no
+ *     stray). An exception raised by the iterator propagates unchanged (rows it gave before are
+ *     lost: the caller fails the read). Raises TypeError for an item that is not a 2-tuple of
  *     bytes, and OverflowError when a batch's keys or values would reach 2**31 bytes (the batch
  *     stops at max_bytes first, so only a row of 2**31 - max_bytes bytes or more gets there).
+ *     The four buffers are bytes objects grown in place and handed over without a copy; the data
+ *     buffers are sized from the batch's first row (reserve_like), so even rows need no regrowth.
  *
  * put(target, key_prefix, value_prefix, key_offsets, keys, key_offset, keys_large, value_offsets,
  *     values, value_offset, values_large, count)
@@ -42,9 +49,10 @@
 
 #include "_binary.h"
 
-/* A growing byte buffer. */
+/* A growing byte buffer: a bytes object of its own (refcount 1), resized in place, so the
+ * finished buffer is handed over without a copy. */
 typedef struct {
-    char *data;
+    PyObject *bytes;
     int64_t len, cap;
 } grow_t;
 
@@ -56,12 +64,14 @@ grow_reserve(grow_t *g, int64_t more)
     int64_t cap = g->cap ? g->cap : 4096;
     while (cap < g->len + more)
         cap *= 2;
-    char *data = realloc(g->data, (size_t)cap);
-    if (data == NULL) {
-        PyErr_NoMemory();
+    if (g->bytes == NULL) {
+        g->bytes = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)cap);
+        if (g->bytes == NULL)
+            return -1;
+    }
+    else if (_PyBytes_Resize(&g->bytes, (Py_ssize_t)cap) < 0) {  /* frees it and sets NULL on failure */
         return -1;
     }
-    g->data = data;
     g->cap = cap;
     return 0;
 }
@@ -71,56 +81,108 @@ grow_append(grow_t *g, const void *src, int64_t n)
 {
     if (grow_reserve(g, n) < 0)
         return -1;
-    memcpy(g->data + g->len, src, (size_t)n);
+    if (n)
+        memcpy(PyBytes_AS_STRING(g->bytes) + g->len, src, (size_t)n);
     g->len += n;
     return 0;
 }
 
-/* Append one bytes object to data and its end offset to offsets. */
+/* The buffer cut to its length, handed over (a new reference); g no longer holds it. */
+static PyObject *
+grow_finish(grow_t *g)
+{
+    if (g->bytes == NULL)
+        return PyBytes_FromStringAndSize("", 0);
+    if (g->len != g->cap && _PyBytes_Resize(&g->bytes, (Py_ssize_t)g->len) < 0)
+        return NULL;
+    PyObject *out = g->bytes;
+    g->bytes = NULL;
+    return out;
+}
+
+/* The element of a row: a bytes object that starts with prefix; its bytes after the prefix. 1
+ * when it is one, 0 when it does not start with the prefix, -1 with TypeError when it is not
+ * bytes. */
 static int
-take_bytes(PyObject *item, grow_t *offsets, grow_t *data, const char *what)
+element(PyObject *item, const Py_buffer *prefix, const char *what, const char **data, int64_t *n)
 {
     if (!PyBytes_Check(item)) {
         PyErr_Format(PyExc_TypeError, "a row's %s is %.80s, not bytes", what, Py_TYPE(item)->tp_name);
         return -1;
     }
-    int64_t n = (int64_t)PyBytes_GET_SIZE(item);
+    int64_t len = (int64_t)PyBytes_GET_SIZE(item);
+    const char *p = PyBytes_AS_STRING(item);
+    if (len < (int64_t)prefix->len || (prefix->len && memcmp(p, prefix->buf, (size_t)prefix->len) != 0))
+        return 0;
+    *data = p + prefix->len;
+    *n = len - (int64_t)prefix->len;
+    return 1;
+}
+
+/* Append n bytes to data and their end offset to offsets. */
+static int
+take_bytes(const char *src, int64_t n, grow_t *offsets, grow_t *data, const char *what)
+{
     if (n > (int64_t)INT32_MAX - data->len) {
         PyErr_Format(PyExc_OverflowError, "the %ss of one batch would reach 2**31 bytes", what);
         return -1;
     }
-    if (grow_append(data, PyBytes_AS_STRING(item), n) < 0)
+    if (grow_append(data, src, n) < 0)
         return -1;
     int32_t end = (int32_t)data->len;
     return grow_append(offsets, &end, 4);
 }
 
+/* Room for the rest of a batch, guessed from its first row: `limit` rows of that size, at most
+ * max_bytes plus the row that crosses it, so a batch of even rows grows its buffer once, not
+ * once per doubling (each a copy), and a batch of large rows asks no more than it may hold. */
+static int
+reserve_like(grow_t *g, int64_t row, Py_ssize_t limit, Py_ssize_t max_bytes)
+{
+    int64_t most = (int64_t)max_bytes < (int64_t)INT32_MAX ? (int64_t)max_bytes : (int64_t)INT32_MAX;
+    int64_t rows = (int64_t)limit, want;
+    if (row > 0 && rows > most / row + 1)
+        want = most + row;
+    else
+        want = row * rows;  /* at most most + row: no overflow */
+    if (want > (int64_t)INT32_MAX)
+        want = (int64_t)INT32_MAX;
+    return want > g->len ? grow_reserve(g, want - g->len) : 0;
+}
+
 PyDoc_STRVAR(collect_doc,
-"collect(rows, limit, max_bytes) -> (count, key_offsets, keys, value_offsets, values)\n\n"
+"collect(rows, limit, max_bytes, key_prefix=b'', value_prefix=b'')\n"
+"    -> (count, key_offsets, keys, value_offsets, values, stray)\n\n"
 "Up to limit (key, value) pairs of bytes from the iterator rows, stopping early once the keys or\n"
-"the values taken reach max_bytes, as the int32 offsets and data of two Arrow binary arrays.");
+"the values taken reach max_bytes, as the int32 offsets and data of two Arrow binary arrays, each\n"
+"key without key_prefix and each value without value_prefix. A row whose key or value does not\n"
+"start with its prefix ends the batch untaken, as stray (else None).");
 
 static PyObject *
 collect(PyObject *module, PyObject *args)
 {
     PyObject *rows;
     Py_ssize_t limit, max_bytes;
+    Py_buffer kp = {0}, vp = {0};
     (void)module;
-    if (!PyArg_ParseTuple(args, "Onn:collect", &rows, &limit, &max_bytes))
+    if (!PyArg_ParseTuple(args, "Onn|y*y*:collect", &rows, &limit, &max_bytes, &kp, &vp))
         return NULL;
+    grow_t ko = {0}, kd = {0}, vo = {0}, vd = {0};
+    PyObject *out = NULL, *stray = NULL;
+    Py_ssize_t count = 0;
+    int32_t zero = 0;
     if (!PyIter_Check(rows)) {
         PyErr_SetString(PyExc_TypeError, "rows must be an iterator");
-        return NULL;
+        goto done;
     }
     if (limit < 0 || max_bytes < 0) {
         PyErr_SetString(PyExc_ValueError, "limit and max_bytes must not be negative");
-        return NULL;
+        goto done;
     }
-    grow_t ko = {0}, kd = {0}, vo = {0}, vd = {0};
-    int32_t zero = 0;
-    PyObject *out = NULL;
-    Py_ssize_t count = 0;
-    if (grow_append(&ko, &zero, 4) < 0 || grow_append(&vo, &zero, 4) < 0)
+    /* the offsets of a whole batch at once: limit + 1 of them, up to 64K rows' worth at first */
+    if (grow_reserve(&ko, 4 * (int64_t)(limit < 65536 ? limit + 1 : 65537)) < 0
+        || grow_reserve(&vo, 4 * (int64_t)(limit < 65536 ? limit + 1 : 65537)) < 0
+        || grow_append(&ko, &zero, 4) < 0 || grow_append(&vo, &zero, 4) < 0)
         goto done;
     while (count < limit && kd.len < (int64_t)max_bytes && vd.len < (int64_t)max_bytes) {
         PyObject *item = PyIter_Next(rows);
@@ -129,27 +191,51 @@ collect(PyObject *module, PyObject *args)
                 goto done;
             break;
         }
-        int bad = 0;
         if (!PyTuple_Check(item) || PyTuple_GET_SIZE(item) != 2) {
             PyErr_Format(PyExc_TypeError, "a row is %.80s, not a (key, value) tuple", Py_TYPE(item)->tp_name);
-            bad = 1;
+            Py_DECREF(item);
+            goto done;
         }
-        else {
-            bad = take_bytes(PyTuple_GET_ITEM(item, 0), &ko, &kd, "key") < 0
-                  || take_bytes(PyTuple_GET_ITEM(item, 1), &vo, &vd, "value") < 0;
+        const char *k = NULL, *v = NULL;
+        int64_t kn = 0, vn = 0;
+        int ks = element(PyTuple_GET_ITEM(item, 0), &kp, "key", &k, &kn);
+        int vs = ks < 0 ? -1 : element(PyTuple_GET_ITEM(item, 1), &vp, "value", &v, &vn);
+        if (vs < 0) {
+            Py_DECREF(item);
+            goto done;
         }
+        if (ks == 0 || vs == 0) {
+            stray = item;  /* handed over with the batch before it */
+            break;
+        }
+        if (count == 0 && (reserve_like(&kd, kn, limit, max_bytes) < 0 || reserve_like(&vd, vn, limit, max_bytes) < 0)) {
+            Py_DECREF(item);
+            goto done;
+        }
+        int bad = take_bytes(k, kn, &ko, &kd, "key") < 0 || take_bytes(v, vn, &vo, &vd, "value") < 0;
         Py_DECREF(item);
         if (bad)
             goto done;
         count++;
     }
-    out = Py_BuildValue("(ny#y#y#y#)", count, ko.data, (Py_ssize_t)ko.len, kd.data ? kd.data : "",
-                        (Py_ssize_t)kd.len, vo.data, (Py_ssize_t)vo.len, vd.data ? vd.data : "", (Py_ssize_t)vd.len);
+    {
+        PyObject *parts[4] = {grow_finish(&ko), grow_finish(&kd), grow_finish(&vo), grow_finish(&vd)};
+        if (parts[0] && parts[1] && parts[2] && parts[3])
+            out = Py_BuildValue("(nNNNNO)", count, parts[0], parts[1], parts[2], parts[3], stray ? stray : Py_None);
+        else
+            for (int i = 0; i < 4; i++)
+                Py_XDECREF(parts[i]);
+    }
 done:
-    free(ko.data);
-    free(kd.data);
-    free(vo.data);
-    free(vd.data);
+    Py_XDECREF(stray);
+    Py_XDECREF(ko.bytes);
+    Py_XDECREF(kd.bytes);
+    Py_XDECREF(vo.bytes);
+    Py_XDECREF(vd.bytes);
+    if (kp.obj)
+        PyBuffer_Release(&kp);
+    if (vp.obj)
+        PyBuffer_Release(&vp);
     return out;
 }
 

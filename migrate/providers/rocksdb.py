@@ -41,6 +41,7 @@ import shutil
 import time
 import uuid
 from collections.abc import Iterable, Iterator
+from typing import NoReturn
 
 import numpy as np
 import pyarrow as pa
@@ -393,8 +394,13 @@ class RocksDBProvider(Provider):
                 # its delimiter (observed), and operands the changelogs did not touch remain
                 set_merge_delimiter(db_dir, delimiter)
             rows = 0
-            for keys, values in iterate(db_dir, where):
-                k, v = codec.from_rocksdb(keys, values, where)
+
+            def stray(key: bytes, value: bytes) -> NoReturn:  # raises the error the row is
+                codec.from_rocksdb(pa.array([key], pa.binary()), pa.array([value], pa.binary()), where)
+                raise CorruptInput(f"a RocksDB row does not start with the bytes every row of this store starts with (key {key[:16]!r})", where)
+
+            for keys, values in iterate(db_dir, where, codec.write_prefixes(), stray):
+                k, v = codec.from_rocksdb_bare(keys, values, where)
                 rows += len(k)
                 yield pa.RecordBatch.from_arrays([k, v], schema=ROW_SCHEMA)
             expected = meta.num_keys + meta.num_internal_keys if meta else None

@@ -348,12 +348,23 @@ class RowCodec:
         return ids
 
     def from_rocksdb(self, keys: pa.Array, values: pa.Array, where: str) -> tuple[pa.Array, pa.Array]:
+        """Canonical rows of RocksDB keys and values: :meth:`write_prefixes` checked and taken
+        off, then :meth:`from_rocksdb_bare`."""
+        if self.known_families is not None:
+            return self.from_rocksdb_bare(keys, values, where)
+        if self.prefix_layouts is not None:
+            return self.from_rocksdb_bare(keys, strip_version_byte(values, where), where)
+        return strip_version_byte(keys, where), strip_version_byte(values, where)
+
+    def from_rocksdb_bare(self, keys: pa.Array, values: pa.Array, where: str) -> tuple[pa.Array, pa.Array]:
+        """Canonical rows of RocksDB keys and values whose :meth:`write_prefixes` the reader has
+        already checked and taken off (``rocksdb_db.iterate`` does, as it collects the rows)."""
         if self.known_families is not None:
             self.check_families(keys, where)
             return as_binary(keys), as_binary(values)
         if self.prefix_layouts is not None:
-            return decode_prefix_keys(keys, self.prefix_layouts, self.k, where), strip_version_byte(values, where)
-        return strip_version_byte(keys, where), strip_version_byte(values, where)
+            return decode_prefix_keys(keys, self.prefix_layouts, self.k, where), as_binary(values)
+        return as_binary(keys), as_binary(values)
 
     def to_rocksdb(self, keys: pa.Array, values: pa.Array, where: str) -> tuple[pa.Array, pa.Array]:
         """The RocksDB keys and values of canonical rows: :meth:`to_rocksdb_bare` with

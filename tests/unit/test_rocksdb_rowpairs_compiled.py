@@ -35,24 +35,39 @@ def compiled() -> ModuleType:
 
 
 def arrays(result: tuple) -> tuple[pa.Array, pa.Array]:
-    count, ko, kd, vo, vd = result
+    keys, values, _ = collected(result)
+    return keys, values
+
+
+def collected(result: tuple) -> tuple[pa.Array, pa.Array, tuple | None]:
+    """The compiled result as rocksdb_db.collect gives it: two checked arrays and the stray row."""
+    count, ko, kd, vo, vd, stray = result
     keys = pa.Array.from_buffers(pa.binary(), count, [None, pa.py_buffer(ko), pa.py_buffer(kd)])
     values = pa.Array.from_buffers(pa.binary(), count, [None, pa.py_buffer(vo), pa.py_buffer(vd)])
     keys.validate(full=True)
     values.validate(full=True)
-    return keys, values
+    return keys, values, stray
 
 
-def batches(collect, rows: list[tuple[bytes, bytes]], limit: int, max_bytes: int) -> list[tuple[list, list]]:
-    """Every batch until an empty one, as Python lists."""
+def batches(collect, rows: list[tuple[bytes, bytes]], limit: int, max_bytes: int, prefixes=(b"", b"")) -> list:
+    """Every batch until an empty one or a stray row, as Python lists; a stray row is the last
+    item, as ("stray", row)."""
     it = iter(rows)
-    out = []
+    out: list = []
     for _ in range(len(rows) + 2):
-        keys, values = collect(it, limit, max_bytes)
+        keys, values, stray = collect(it, limit, max_bytes, prefixes)
+        if len(keys):
+            out.append((keys.to_pylist(), values.to_pylist()))
+        if stray is not None:
+            out.append(("stray", stray))
+            return out
         if not len(keys):
             return out
-        out.append((keys.to_pylist(), values.to_pylist()))
     raise AssertionError("the batches never ended")
+
+
+def compiled_collect(compiled: ModuleType):
+    return lambda it, n, b, prefixes: collected(compiled.collect(it, n, b, *prefixes))
 
 
 rows_strategy = st.lists(st.tuples(st.binary(max_size=40), st.binary(max_size=90)), max_size=60)
@@ -61,7 +76,7 @@ rows_strategy = st.lists(st.tuples(st.binary(max_size=40), st.binary(max_size=90
 @settings(max_examples=200, deadline=None)
 @given(rows=rows_strategy, limit=st.integers(1, 9), max_bytes=st.integers(1, 200))
 def test_same_batches_as_the_python_reference(compiled: ModuleType, rows, limit: int, max_bytes: int) -> None:
-    ours = batches(lambda it, n, b: arrays(compiled.collect(it, n, b)), rows, limit, max_bytes)
+    ours = batches(compiled_collect(compiled), rows, limit, max_bytes)
     reference = batches(_collect_py, rows, limit, max_bytes)
     assert ours == reference
     # nothing lost, nothing repeated, order kept
@@ -70,6 +85,43 @@ def test_same_batches_as_the_python_reference(compiled: ModuleType, rows, limit:
         assert len(keys) <= limit
         # a batch stops once its keys or values reach max_bytes: only its last row may cross it
         assert sum(map(len, keys[:-1])) < max_bytes and sum(map(len, values[:-1])) < max_bytes
+
+
+prefix_rows = st.lists(
+    st.tuples(st.sampled_from([b"", b"\x00", b"\x01", b"ab"]), st.binary(max_size=30),
+              st.sampled_from([b"", b"\x00", b"\x02", b"a"]), st.binary(max_size=50)),
+    max_size=40,
+).map(lambda parts: [(kp + k, vp + v) for kp, k, vp, v in parts])
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    rows=prefix_rows,
+    prefixes=st.sampled_from([(b"", b""), (b"\x00", b"\x00"), (b"", b"\x00"), (b"ab", b"a")]),
+    limit=st.integers(1, 9),
+    max_bytes=st.integers(1, 200),
+)
+def test_prefixes_taken_off_as_the_python_reference_does(compiled: ModuleType, rows, prefixes, limit: int, max_bytes: int) -> None:
+    ours = batches(compiled_collect(compiled), rows, limit, max_bytes, prefixes)
+    reference = batches(_collect_py, rows, limit, max_bytes, prefixes)
+    assert ours == reference
+    # the rows before the first one without the prefixes, each without them; that row is the stray
+    kp, vp = prefixes
+    good = next((i for i, (k, v) in enumerate(rows) if not (k.startswith(kp) and v.startswith(vp))), len(rows))
+    taken = [(k, v) for batch in ours if batch[0] != "stray" for k, v in zip(*batch)]
+    assert taken == [(k[len(kp) :], v[len(vp) :]) for k, v in rows[:good]]
+    assert (ours[-1] == ("stray", rows[good])) if good < len(rows) else all(b[0] != "stray" for b in ours)
+
+
+def test_buffers_sized_from_the_first_row_still_grow(compiled: ModuleType) -> None:
+    """A batch of small rows, then large ones: the room guessed from the first row is outgrown
+    and grown; a first row larger than the byte bound asks no more than the bound allows."""
+    rows = [(b"k%03d" % i, b"v" * (1 if i < 5 else 5000)) for i in range(300)]
+    keys, values, stray = collected(compiled.collect(iter(rows), 1000, 1 << 30))
+    assert stray is None and list(zip(keys.to_pylist(), values.to_pylist())) == rows
+    big = [(b"k", b"x" * 100_000), (b"l", b"y")]
+    keys, values, _ = collected(compiled.collect(iter(big), 1000, 10))
+    assert values.to_pylist() == [b"x" * 100_000]  # the first row crosses the bound: the batch ends
 
 
 def test_the_bounds_exactly(compiled: ModuleType) -> None:
