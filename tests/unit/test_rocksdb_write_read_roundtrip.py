@@ -109,6 +109,7 @@ def test_written_files_match_the_engine_layout(tmp_path: Path) -> None:
         meta = parse_metadata(z.read("metadata"), "3.zip")
     for line in ("format_version=5", "compression=kLZ4Compression", "comparator=leveldb.BytewiseComparator", "checksum=kXXH3"):
         assert f"  {line}\n" in options
+    assert "  max_file_opening_threads=1\n" in options  # the build's one table-opening thread (rocksdb_db.build_db)
     assert [f.local_name for f in meta.sst_files] == [r.rsplit("/", 1)[1].split("-")[0] + ".sst" for r in sst]
 
 
