@@ -317,6 +317,18 @@ class Location:
         except Exception as exc:  # noqa: BLE001
             self._fail(exc, rel, "open this file")
 
+    def link_file(self, rel: str, local_path: str) -> bool:
+        """On local disk, make ``local_path`` a symbolic link to the file (no copy) and return
+        True; False on other storage, or when the link cannot be made (the caller copies then).
+        The caller must only read through the link: a write would change this location's file."""
+        if not self.is_local:
+            return False
+        try:
+            os.symlink(os.path.abspath(self.path(rel)), local_path)
+        except OSError:
+            return False
+        return True
+
     def get_file(self, rel: str, local_path: str) -> None:
         """Download one file to local disk (one GET on object stores)."""
         try:

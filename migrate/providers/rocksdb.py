@@ -376,13 +376,15 @@ class RocksDBProvider(Provider):
         zipped = self._metadata(store, zip_name, listing) if zip_name else None
         # scratch holds the version's table files, plus what the changelogs replay into
         # (a decompressed changelog is written twice: write-ahead log and flushed table)
-        need = sum(f.size for f in zipped[1].sst_files + zipped[1].log_files) if zipped else 0
+        # a version read as it is (no changelog to replay) links its table files where it can
+        link = not changelogs and store.location.is_local
+        need = sum(f.size for f in (() if link else zipped[1].sst_files) + zipped[1].log_files) if zipped else 0
         need += sum(8 * listing[n].size for n in changelogs if n in listing)
         tmp = scratch.make("stateshift-rocksdb-r-", need)
         try:
             db_dir = os.path.join(tmp, "db")
             os.mkdir(db_dir)
-            meta = self._restore(store, zip_name, zipped, db_dir) if zip_name and zipped else None
+            meta = self._restore(store, zip_name, zipped, db_dir, link) if zip_name and zipped else None
             families = column_families(meta, store.describe(zip_name or "")) if meta else None
             codec = _codec_for_read(ctx, families, store, version)
             delimiter = merge_delimiter(ctx.conf, where)
@@ -410,10 +412,14 @@ class RocksDBProvider(Provider):
             shutil.rmtree(tmp, ignore_errors=True)
 
     def _restore(
-        self, store: StoreDir, zip_name: str, zipped: tuple[dict[str, bytes], VersionMetadata], db_dir: str
+        self, store: StoreDir, zip_name: str, zipped: tuple[dict[str, bytes], VersionMetadata], db_dir: str,
+        link: bool = False,
     ) -> VersionMetadata:
         """Extract a version zip (its members and metadata, from :meth:`_metadata`) and its shared
-        files into ``db_dir``; return its metadata."""
+        files into ``db_dir``; return its metadata. With ``link``, each table file on local disk
+        becomes a symbolic link to the checkpoint's file instead of a copy: only for a DB opened
+        read-only (RocksDB never rewrites a table file; a read-only open deletes none either).
+        Removing the scratch folder removes the links, never the files they point to."""
         where = store.describe(zip_name)
         members, meta = zipped
         ssts = self._shared(store, SST_DIR, meta.sst_files, where)
@@ -421,9 +427,11 @@ class RocksDBProvider(Provider):
         for name, data in members.items():
             with open(os.path.join(db_dir, name), "wb") as f:
                 f.write(data)
-        for shared, wf in zip(meta.sst_files + meta.log_files, ssts + logs):
+        linkable = [link] * len(ssts) + [False] * len(logs)  # write-ahead logs are always copied
+        for shared, wf, linked in zip(meta.sst_files + meta.log_files, ssts + logs, linkable):
             local = os.path.join(db_dir, shared.local_name)
-            store.location.get_file(wf.rel, local)
+            if not (linked and store.location.link_file(wf.rel, local)):
+                store.location.get_file(wf.rel, local)
             if os.path.getsize(local) != shared.size:
                 raise CorruptInput(f"downloaded {os.path.getsize(local)} bytes, expected {shared.size}", store.location.describe(wf.rel))
         return meta
