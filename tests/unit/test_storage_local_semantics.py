@@ -77,3 +77,54 @@ def test_a_readonly_location_refuses_every_write(tmp_path):
         with pytest.raises(StateshiftError, match="read-only"):
             attempt()
     assert sorted(os.listdir(tmp_path)) == ["keep"]
+
+
+def _tree_with_links(root):
+    root.mkdir()
+    (root / "sub").mkdir()
+    (root / "sub" / "inner").write_bytes(b"abc")
+    (root / "empty").write_bytes(b"")
+    (root / "data.bin").write_bytes(b"x" * 4097)
+    (root / ".data.bin.crc").write_bytes(b"crc\x00" + b"\x00" * 8)
+    os.symlink(root / "data.bin", root / "link-to-file")
+    os.symlink(root / "sub", root / "link-to-dir")
+    os.symlink(root / "gone", root / "dangling")
+    return root
+
+
+def test_local_listing_gives_what_fsspec_lists(tmp_path):
+    """The local fast path (os.scandir) against fsspec's local ls (the reference): names,
+    sizes, kinds and modification times, links and a dangling link included; through a link to
+    the directory too; an absent directory and a file list as empty either way."""
+    root = _tree_with_links(tmp_path / "t")
+    os.symlink(root, tmp_path / "t-link")
+    loc = open_location(str(tmp_path))
+    assert loc.is_local
+    for rel in ("t", "t-link", "t/sub", "missing", "t/data.bin"):
+        ours = loc._list_local(rel, loc.path(rel))
+        assert ours == loc._list_fs(rel, loc.path(rel)), rel
+        assert loc.list_dir(rel) == ours
+    listing = loc.list_dir("t")
+    assert listing["link-to-file"].size == 4097 and not listing["link-to-file"].is_dir
+    assert listing["dangling"].size == 0 and listing["sub"].is_dir
+    assert len(listing) == 7
+
+
+def test_local_listing_and_reading_fail_with_one_line_naming_the_place(tmp_path, monkeypatch):
+    (tmp_path / "d").mkdir()
+    (tmp_path / "d" / "f").write_bytes(b"1")
+    loc = open_location(str(tmp_path))
+
+    def denied(path):
+        raise PermissionError(13, "Permission denied", str(path))
+
+    monkeypatch.setattr(os, "scandir", denied)
+    with pytest.raises(StateshiftError) as info:
+        loc.list_dir("d")
+    assert "access denied" in str(info.value) and str(tmp_path / "d") in str(info.value)
+    monkeypatch.undo()
+    with pytest.raises(CorruptInput, match="expected a file, found a directory"):
+        loc.read_bytes("d")
+    with pytest.raises(CorruptInput, match="file is missing"):
+        loc.read_bytes("d/nothing")
+    assert loc.read_bytes("d/f") == b"1"
