@@ -32,7 +32,6 @@ from __future__ import annotations
 
 import os
 import re
-import stat
 import uuid
 from dataclasses import dataclass, field
 from typing import IO, Any, NoReturn
