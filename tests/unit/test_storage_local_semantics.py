@@ -128,3 +128,13 @@ def test_local_listing_and_reading_fail_with_one_line_naming_the_place(tmp_path,
     with pytest.raises(CorruptInput, match="file is missing"):
         loc.read_bytes("d/nothing")
     assert loc.read_bytes("d/f") == b"1"
+
+
+def test_a_file_url_lists_and_reads_like_the_plain_path(tmp_path):
+    """The local fast path sees the filesystem path behind a ``file://`` URL (an unresolved URL
+    handed to os.scandir would list as empty, not fail)."""
+    root = _tree_with_links(tmp_path / "t")
+    plain, url = open_location(str(root)), open_location(f"file://{root}")
+    assert url.is_local and url.root == plain.root
+    assert url.list_dir("") == plain.list_dir("") and len(url.list_dir("")) == 7
+    assert url.read_bytes("sub/inner") == b"abc"
