@@ -1,5 +1,6 @@
-/* Shared by the compiled helpers (_framing.c, _keysort.c, _rowpairs.c, ../_digest.c): one Arrow binary array's offsets
- * and data buffers, exported through the buffer protocol and checked before any use.
+/* Shared by the compiled helpers (_framing.c, _keysort.c, _rowpairs.c, ../_digest.c,
+ * ../rows/_flatrows.c): one Arrow binary array's offsets and data buffers, exported through the
+ * buffer protocol and checked before any use.
  *
  * open_binary checks every offset of the array's slice in 64-bit arithmetic (from 0 or more,
  * never decreasing, the last within the data, every element shorter than 2**31 bytes) before the

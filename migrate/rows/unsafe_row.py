@@ -48,6 +48,11 @@ from migrate.rows.schema import (
 )
 from migrate.rows.writer import encode_rows
 
+try:  # the compiled decode of flat rows (setup.py builds it when a C compiler is there)
+    from migrate.rows import _flatrows
+except ImportError:  # not built: every batch takes the numpy way below
+    _flatrows = None
+
 __all__ = ["decode_rows", "decode_rows_report", "DecodeResult", "UndecodedColumnsWarning",
            "encode_rows"]
 
@@ -119,6 +124,9 @@ def decode_rows_report(data: pa.Array | pa.ChunkedArray, schema: StructType, whe
         offsets_dtype = np.int64
     else:
         raise TypeError(f"decode_rows needs a binary array, not {data.type}")
+    flat = _flat(data, schema)
+    if flat is not None:
+        return DecodeResult(flat, ())
     n = len(data)
     bufs = data.buffers()
     offsets = np.frombuffer(bufs[1], dtype=offsets_dtype)[data.offset:data.offset + n + 1]
@@ -133,6 +141,61 @@ def decode_rows_report(data: pa.Array | pa.ChunkedArray, schema: StructType, whe
         raise Unsupported(f"row columns of unsupported types: {', '.join(ctx.undecoded)}",
                           where)
     return DecodeResult(rows, tuple(ctx.undecoded))
+
+
+# ------------------------------------------------------------------------------------------
+# flat rows, compiled
+
+# the field kinds of migrate/rows/_flatrows.c: a fixed-width value copied from the first bytes of
+# its slot (its width), a boolean, or a string or binary (offset and size in the slot)
+_FLAT_KINDS = {"u1": b"z", "<i1": b"1", "<i2": b"2", "<i4": b"4", "<f4": b"4", "<i8": b"8", "<f8": b"8"}
+
+
+def _flat_kinds(schema: StructType) -> bytes | None:
+    kinds = []
+    for f in schema.fields:
+        t = f.data_type
+        if isinstance(t, (StringType, BinaryType)):
+            kinds.append(b"v")
+        elif type(t) in FIXED_DTYPES:
+            kinds.append(_FLAT_KINDS[FIXED_DTYPES[type(t)]])
+        else:
+            return None
+    return b"".join(kinds) or None
+
+
+def _flat(data: pa.Array, schema: StructType) -> pa.StructArray | None:
+    """The rows decoded by the compiled :mod:`._flatrows`, for a schema of fixed-width, string and
+    binary fields only and rows without nulls; None otherwise, and None for rows it finds
+    malformed or strings that are not UTF-8, which the numpy way then decodes or reports (naming
+    the row): it is the reference. Measured on four 10M-key benchmark partitions (a string and a
+    long in the key, four longs in the value; the archive's typed columns of both), three rounds
+    alternating in one process: 0.217-0.231 -> 0.085-0.088 CPU us per row."""
+    kinds = _flat_kinds(schema) if _flatrows is not None and data.null_count == 0 and len(data) else None
+    if kinds is None:
+        return None
+    bufs = data.buffers()
+    got = _flatrows.decode(bufs[1], bufs[2] if bufs[2] is not None else b"", data.offset,
+                           pa.types.is_large_binary(data.type), len(data), kinds)
+    if got is None:
+        return None
+    n = len(data)
+    children = []
+    for f, part in zip(schema.fields, got):
+        nulls, validity = part[0], pa.py_buffer(part[1]) if part[0] else None
+        if len(part) == 4:
+            atype = pa.string() if isinstance(f.data_type, StringType) else pa.binary()
+            child = pa.Array.from_buffers(atype, n, [validity, pa.py_buffer(part[2]), pa.py_buffer(part[3])], null_count=nulls)
+            if isinstance(f.data_type, StringType):
+                try:
+                    child.validate(full=True)
+                except pa.ArrowInvalid:
+                    return None
+        else:
+            child = pa.Array.from_buffers(arrow_type(f.data_type), n, [validity, pa.py_buffer(part[2])], null_count=nulls)
+        children.append(child)
+    atype = pa.struct([pa.field(f.name, c.type, f.nullable) for f, c in zip(schema.fields, children)])
+    return pa.Array.from_buffers(atype, n, [None], null_count=0, children=children)
 
 
 # ------------------------------------------------------------------------------------------
