@@ -1,8 +1,10 @@
 """Vectorised decoding of the engine's binary rows (UnsafeRow) into typed Arrow columns.
 
 ``decode_rows(binary_array, schema)`` turns a whole batch of row bytes into a
-``pyarrow.StructArray`` with one child per schema field, typed by ``schema.arrow_type``. The work
-is done with numpy over the batch's concatenated data buffer: fixed-width fields are gathered
+``pyarrow.StructArray`` with one child per schema field, typed by ``schema.arrow_type``. A flat
+schema (fixed-width, string and binary fields) over rows without nulls is decoded by the compiled
+``_flatrows`` when it is built (:func:`_flat`); everything else, and every malformed row, by numpy
+over the batch's concatenated data buffer, the reference: fixed-width fields are gathered
 with one fancy-index per field, strings and binaries are built from offset arithmetic, and
 nested structs, arrays and maps recurse once per nesting level (never once per row). The byte
 layout is described in ``migrate.rows.layout``.
