@@ -20,6 +20,6 @@ setup(
         Extension("migrate.providers._rowpairs", ["migrate/providers/_rowpairs.c"], depends=[BINARY_H], optional=True),
         Extension("migrate._digest", ["migrate/_digest.c"], depends=[BINARY_H], optional=True),
         Extension("migrate.rows._flatrows", ["migrate/rows/_flatrows.c"], depends=[BINARY_H], optional=True),
-        Extension("migrate.codecs._chunkcrc", ["migrate/codecs/_chunkcrc.c"], libraries=["z"], optional=True),
+        Extension("migrate.codecs._chunkcrc", ["migrate/codecs/_chunkcrc.c"], libraries=["z", "dl"], optional=True),
     ]
 )

@@ -299,15 +299,25 @@ def targets(results: list[CaseResult]) -> list[str]:
     return out
 
 
-def tool_environment(tool_python: str | None) -> str:
-    """The tool's interpreter, and whether pandas is importable there: pyarrow imports it, when
+_PROBE = """
+import importlib.util as u
+print(u.find_spec('pandas') is not None)
+from migrate.codecs import hadoop_crc
+print(hadoop_crc._chunkcrc.crc_library() if hadoop_crc._chunkcrc else 'python loop')
+"""
+
+
+def tool_environment(tool_python: str | None, tool_path: str | None = None) -> str:
+    """The tool's interpreter, whether pandas is importable there (pyarrow imports it, when
     installed, on the first ``pa.array`` of a list or numpy array, which costs every process of
-    the tool about 0.35 CPU s and 35-53 MB (measured); the tool itself never uses pandas."""
+    the tool about 0.35 CPU s and 35-53 MB, measured; the tool itself never uses pandas), and which
+    library computes the checksum sidecars' CRCs (the system's libdeflate, about 5x zlib)."""
     python = tool_python or sys.executable
-    probe = subprocess.run([python, "-c", "import importlib.util as u; print(u.find_spec('pandas') is not None)"],
-                           capture_output=True, text=True)
-    pandas = {"True": "pandas installed", "False": "no pandas"}.get(probe.stdout.strip(), "pandas unknown")
-    return f"tool interpreter {python} ({pandas})"
+    probe = subprocess.run([python, "-c", _PROBE], capture_output=True, text=True, env=_env(tool_path))
+    lines = probe.stdout.split() + ["", ""]
+    pandas = {"True": "pandas installed", "False": "no pandas"}.get(lines[0], "pandas unknown")
+    crc = lines[1] or "unknown"
+    return f"tool interpreter {python} ({pandas}; sidecar CRCs by {crc})"
 
 
 def write_results(results: list[CaseResult], jobs: int, argv: list[str], name: str | None = None, environment: str = "") -> Path:
@@ -393,7 +403,7 @@ def main(argv: list[str] | None = None) -> int:
     finally:
         if args.scratch is None:
             shutil.rmtree(scratch, ignore_errors=True)
-    path = write_results(results, args.jobs, argv, args.results, tool_environment(args.tool_python))
+    path = write_results(results, args.jobs, argv, args.results, tool_environment(args.tool_python, tool_path))
     print(table(results))
     print("\n".join(targets(results)))
     print(f"results appended to {path}")
