@@ -21,5 +21,6 @@ setup(
         Extension("migrate._digest", ["migrate/_digest.c"], depends=[BINARY_H], optional=True),
         Extension("migrate.rows._flatrows", ["migrate/rows/_flatrows.c"], depends=[BINARY_H], optional=True),
         Extension("migrate.codecs._chunkcrc", ["migrate/codecs/_chunkcrc.c"], libraries=["z", "dl"], optional=True),
+        Extension("migrate.codecs._lz4stream", ["migrate/codecs/_lz4stream.c"], libraries=["dl"], optional=True),
     ]
 )

@@ -302,8 +302,10 @@ def targets(results: list[CaseResult]) -> list[str]:
 _PROBE = """
 import importlib.util as u
 print(u.find_spec('pandas') is not None)
-from migrate.codecs import hadoop_crc
-print(hadoop_crc._chunkcrc.crc_library() if hadoop_crc._chunkcrc else 'python loop')
+from migrate.codecs import hadoop_crc, lz4_stream
+print(hadoop_crc._chunkcrc.crc_library() if hadoop_crc._chunkcrc else 'python-loop')
+m = lz4_stream._lz4stream
+print('liblz4' if m is not None and m.available() else 'python-lz4')
 """
 
 
@@ -311,13 +313,14 @@ def tool_environment(tool_python: str | None, tool_path: str | None = None) -> s
     """The tool's interpreter, whether pandas is importable there (pyarrow imports it, when
     installed, on the first ``pa.array`` of a list or numpy array, which costs every process of
     the tool about 0.35 CPU s and 35-53 MB, measured; the tool itself never uses pandas), and which
-    library computes the checksum sidecars' CRCs (the system's libdeflate, about 5x zlib)."""
+    library computes the checksum sidecars' CRCs (the system's libdeflate, about 5x zlib) and
+    which decodes LZ4 streams (the compiled decoder with the system's liblz4, or python-lz4)."""
     python = tool_python or sys.executable
     probe = subprocess.run([python, "-c", _PROBE], capture_output=True, text=True, env=_env(tool_path))
-    lines = probe.stdout.split() + ["", ""]
+    lines = probe.stdout.split() + ["", "", ""]
     pandas = {"True": "pandas installed", "False": "no pandas"}.get(lines[0], "pandas unknown")
-    crc = lines[1] or "unknown"
-    return f"tool interpreter {python} ({pandas}; sidecar CRCs by {crc})"
+    crc, lz4 = lines[1] or "unknown", lines[2] or "unknown"
+    return f"tool interpreter {python} ({pandas}; sidecar CRCs by {crc}; LZ4 streams by {lz4})"
 
 
 def write_results(results: list[CaseResult], jobs: int, argv: list[str], name: str | None = None, environment: str = "") -> Path:

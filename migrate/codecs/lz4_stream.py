@@ -17,6 +17,11 @@ as observed in state files written by Spark 4.3.0 (``spark.io.compression.lz4.bl
 The reader also accepts several such streams back to back, as the engine's reader does (it reads
 on after an end mark). It rejects everything else: a missing end mark (truncation), trailing bytes
 that are not another stream, bad lengths, failed checksums.
+
+A well-formed stream is decoded by the compiled helper ``_lz4stream`` when it is built and the
+system's liblz4 and libxxhash load (one pass, every block straight into the output); anything it
+does not take, and every stream when it is not there, goes through :meth:`Lz4BlockStream._decompress_py`,
+the reference, which also names what is wrong with a bad stream.
 """
 
 from __future__ import annotations
@@ -28,6 +33,11 @@ import lz4.block
 import xxhash
 
 from ..errors import CorruptInput
+
+try:  # the compiled decoder (setup.py builds it when a C compiler is there; it loads liblz4 and libxxhash)
+    from . import _lz4stream
+except ImportError:  # not built: the Python decoder below
+    _lz4stream = None
 
 MAGIC = b"LZ4Block"
 HEADER = struct.Struct("<8sBiiI")  # magic, token, compressed length, original length, checksum
@@ -64,8 +74,18 @@ class Lz4BlockStream:
             raise ValueError(f"lz4 block size must be in [{MIN_BLOCK_SIZE}, {MAX_BLOCK_SIZE}], got {self.block_size}")
 
     def decompress(self, data: bytes, where: str) -> bytearray:
-        """The stream's bytes, each block checked, appended to one growing buffer as it is
-        decompressed (a list of blocks joined at the end held the output twice at its peak)."""
+        """The stream's bytes, each block checked: by the compiled decoder when it is loaded and
+        takes the stream, else (and to name the problem of a bad stream) by :meth:`_decompress_py`."""
+        if _lz4stream is not None and _lz4stream.available():
+            out = _lz4stream.decompress(data, XXHASH_SEED, CHECKSUM_MASK)
+            if out is not None:
+                return out
+        return self._decompress_py(data, where)
+
+    def _decompress_py(self, data: bytes, where: str) -> bytearray:
+        """The reference decoder: each block decompressed by ``lz4.block``, checked by ``xxhash``,
+        and appended to one growing buffer (a list of blocks joined at the end held the output
+        twice at its peak)."""
         view = memoryview(data)
         total = len(view)
         out = bytearray()
