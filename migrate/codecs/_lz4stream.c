@@ -29,8 +29,8 @@
  * not needed to build), and used only after they pass checks at import: LZ4 must turn a block
  * written here by the LZ4 block format's rules (a literal run, a match that overlaps itself,
  * the final literals) into its bytes and refuse a truncated copy of it; XXH32 of empty input with
- * seed 0 must be 0x02CC5D05 (the value from xxHash's reference tests, from memory; the test file
- * checks the library against the python xxhash package, too). Without them the Python decoder
+ * seed 0 must be 0x02CC5D05 (from memory; the test file holds both check values to the python lz4
+ * and xxhash packages, and decodes streams whose checksums the xxhash package computed). Without them the Python decoder
  * does everything, with the same results.
  *
  * Bounds: every header is read within the buffer; lengths are checked as the Python decoder

@@ -145,3 +145,21 @@ def test_the_codec_uses_the_compiled_decoder_when_loaded(compiled: ModuleType, m
     assert Lz4BlockStream().decompress(stream, WHERE) == data and not calls  # taken by the compiled decoder
     Lz4BlockStream().decompress(stream[:-1], WHERE)
     assert calls == [WHERE]  # a bad stream goes to the reference, which names the problem
+
+
+def test_the_import_check_values_agree_with_the_reference_libraries() -> None:
+    # the values _lz4stream.c checks the system's libraries against at import (from memory there)
+    assert xxhash.xxh32_intdigest(b"", seed=0) == 0x02CC5D05  # python xxhash package: the reference
+    block = bytes([0x34]) + b"abc" + bytes([0x03, 0x00, 0x50]) + b"tail!"
+    assert lz4.block.decompress(block, uncompressed_size=16) == b"abcabcabcabtail!"  # lz4.block: the reference
+    with pytest.raises(lz4.block.LZ4BlockError):
+        lz4.block.decompress(block[:8], uncompressed_size=16)
+
+
+def test_without_the_compiled_decoder_the_reference_decodes(monkeypatch: pytest.MonkeyPatch) -> None:
+    data = b"pump-pressure " * 900
+    stream = Lz4BlockStream().compress(data)
+    monkeypatch.setattr(lz4_stream, "_lz4stream", None)
+    assert Lz4BlockStream().decompress(stream, WHERE) == data
+    with pytest.raises(CorruptInput, match="missing end mark"):
+        Lz4BlockStream().decompress(stream[:-21], WHERE)
