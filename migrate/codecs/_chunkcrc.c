@@ -20,9 +20,10 @@
  * libdeflate_crc32, which folds with carry-less multiplication where the CPU has it, 6.9-8.6 GB/s
  * on the same 64 MiB (measured here, a C loop over both, three rounds; every slice's CRC equal).
  * So the system's libdeflate (Debian's libdeflate0, present on these machines) is loaded at import
- * when it is there, by its soname and its documented entry point (libdeflate.h: "updates a running
- * CRC-32 checksum with 'len' bytes of data and returns the updated checksum. When starting a new
- * checksum, the required initial value for 'crc' is 0", zlib's convention), and used only after it
+ * when it is there, by its soname and its documented entry point (libdeflate.h, quoted from
+ * memory: "updates a running CRC-32 checksum with 'len' bytes of data and returns the updated
+ * checksum. When starting a new checksum, the required initial value for 'crc' is 0", zlib's
+ * convention), and used only after it
  * gives the published check value (CRC catalogue, CRC-32/ISO-HDLC: "123456789" -> 0xCBF43926)
  * and zlib's CRC of a 1000-byte pattern. Otherwise, or when it is absent, zlib computes them.
  */

@@ -21,8 +21,9 @@
  * once to size the output, and every block decompresses straight into it, without the GIL.
  *
  * The block compression and the checksum are libraries, not code of ours: LZ4_decompress_safe
- * from the system's liblz4 (Debian's liblz4-1; lz4.h documents it: "compressedSize is the exact
- * complete size of the compressed block; dstCapacity is the size of destination buffer; returns
+ * from the system's liblz4 (Debian's liblz4-1; lz4.h documents it, quoted from memory:
+ * "compressedSize is the exact complete size of the compressed block; dstCapacity is the size of
+ * destination buffer; returns
  * the number of bytes decompressed into destination buffer, or a negative result if the source
  * stream is detected malformed") and XXH32 from the system's libxxhash (Debian's libxxhash0;
  * xxhash.h: XXH32(input, length, seed)). Both are loaded with dlopen by soname (their headers are
