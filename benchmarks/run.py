@@ -304,8 +304,7 @@ import importlib.util as u
 print(u.find_spec('pandas') is not None)
 from migrate.codecs import hadoop_crc, lz4_stream
 print(hadoop_crc._chunkcrc.crc_library() if hadoop_crc._chunkcrc else 'python-loop')
-m = lz4_stream._lz4stream
-print('liblz4' if m is not None and m.available() else 'python-lz4')
+print('liblz4' if lz4_stream._lz4stream is not None else 'python-lz4')
 """
 
 

@@ -12,9 +12,6 @@
  * available() -> bool
  *     Whether the system's liblz4 and libxxhash loaded and passed their checks at import.
  *
- * libraries() -> str
- *     The two libraries' sonames, for the record.
- *
  * Why: the Python decoder costs a Python loop turn, a fresh 32 KiB bytes object, and a copy
  * into a growing bytearray (with its reallocations) per block. A native profile of the 10M-key
  * export put 3 % of all samples in that copy and its reallocations. Here the headers are walked
@@ -67,6 +64,21 @@ le_int32(const unsigned char *p)
     return (int32_t)v;
 }
 
+/* The fields after the magic of the block header at p (HEADER_LEN bytes, read by the caller's
+ * bounds): token, compressed length, original length, checksum (lz4_stream.HEADER). */
+typedef struct {
+    int token;
+    int64_t comp, orig;
+    uint32_t check;
+} header_t;
+
+static header_t
+header_at(const unsigned char *p)
+{
+    header_t h = {p[8], le_int32(p + 9), le_int32(p + 13), (uint32_t)le_int32(p + 17)};
+    return h;
+}
+
 /* Load both libraries and check them; leaves both pointers NULL unless both pass. */
 static void
 load_libraries(void)
@@ -111,17 +123,16 @@ walk(const unsigned char *data, int64_t len)
     while (pos < len) {
         if (len - pos < HEADER_LEN || memcmp(data + pos, magic, 8) != 0)
             return -1;
-        int token = data[pos + 8];
-        int64_t comp = le_int32(data + pos + 9), orig = le_int32(data + pos + 13);
-        int32_t check = le_int32(data + pos + 17);
-        int method = token & 0xF0;
-        int64_t max_len = (int64_t)1 << (LEVEL_BASE + (token & 0x0F));
+        header_t h = header_at(data + pos);
+        int64_t comp = h.comp, orig = h.orig;
+        int method = h.token & 0xF0;
+        int64_t max_len = (int64_t)1 << (LEVEL_BASE + (h.token & 0x0F));
         if ((method != METHOD_RAW && method != METHOD_LZ4) || comp < 0 || orig < 0 || orig > max_len
             || (orig == 0) != (comp == 0) || (method == METHOD_RAW && orig != comp))
             return -1;
         int64_t body = pos + HEADER_LEN;
         if (orig == 0) {
-            if (check != 0)
+            if (h.check != 0)
                 return -1;
             ended = 1;
             pos = body;
@@ -144,21 +155,19 @@ fill(const unsigned char *data, int64_t len, char *out, uint32_t seed, uint32_t 
 {
     int64_t pos = 0, at = 0;
     while (pos < len) {
-        int token = data[pos + 8];
-        int64_t comp = le_int32(data + pos + 9), orig = le_int32(data + pos + 13);
-        uint32_t check = (uint32_t)le_int32(data + pos + 17);
+        header_t h = header_at(data + pos);
         const unsigned char *body = data + pos + HEADER_LEN;
-        pos += HEADER_LEN + comp;
-        if (orig == 0)
+        pos += HEADER_LEN + h.comp;
+        if (h.orig == 0)
             continue;
-        if ((token & 0xF0) == METHOD_RAW) {
-            memcpy(out + at, body, (size_t)orig);
-        } else if (lz4_decompress_safe((const char *)body, out + at, (int)comp, (int)orig) != orig) {
+        if ((h.token & 0xF0) == METHOD_RAW) {
+            memcpy(out + at, body, (size_t)h.orig);
+        } else if (lz4_decompress_safe((const char *)body, out + at, (int)h.comp, (int)h.orig) != h.orig) {
             return -1;
         }
-        if ((xxh32(out + at, (size_t)orig, seed) & mask) != check)
+        if ((xxh32(out + at, (size_t)h.orig, seed) & mask) != h.check)
             return -1;
-        at += orig;
+        at += h.orig;
     }
     return 0;
 }
@@ -206,17 +215,10 @@ available(PyObject *self, PyObject *unused)
     return PyBool_FromLong(lz4_decompress_safe != NULL);
 }
 
-static PyObject *
-libraries(PyObject *self, PyObject *unused)
-{
-    return PyUnicode_FromString("liblz4.so.1 (LZ4_decompress_safe), libxxhash.so.0 (XXH32)");
-}
-
 static PyMethodDef methods[] = {
     {"decompress", decompress, METH_VARARGS,
      "decompress(data, seed, mask) -> the stream's bytes (bytearray), or None when it is not well formed"},
     {"available", available, METH_NOARGS, "available() -> whether liblz4 and libxxhash loaded and passed their checks"},
-    {"libraries", libraries, METH_NOARGS, "libraries() -> the sonames and entry points used"},
     {NULL, NULL, 0, NULL},
 };
 

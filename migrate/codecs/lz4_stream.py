@@ -38,6 +38,8 @@ try:  # the compiled decoder (setup.py builds it when a C compiler is there; it 
     from . import _lz4stream
 except ImportError:  # not built: the Python decoder below
     _lz4stream = None
+if _lz4stream is not None and not _lz4stream.available():  # built, but the system's libraries did not load
+    _lz4stream = None
 
 MAGIC = b"LZ4Block"
 HEADER = struct.Struct("<8sBiiI")  # magic, token, compressed length, original length, checksum
@@ -76,7 +78,7 @@ class Lz4BlockStream:
     def decompress(self, data: bytes, where: str) -> bytearray:
         """The stream's bytes, each block checked: by the compiled decoder when it is loaded and
         takes the stream, else (and to name the problem of a bad stream) by :meth:`_decompress_py`."""
-        if _lz4stream is not None and _lz4stream.available():
+        if _lz4stream is not None:
             out = _lz4stream.decompress(data, XXHASH_SEED, CHECKSUM_MASK)
             if out is not None:
                 return out
