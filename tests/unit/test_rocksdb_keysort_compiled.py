@@ -192,6 +192,30 @@ def test_last_of_each_keeps_every_distinct_keys_last_position(keysort: ModuleTyp
     assert got == [last[k] for k in sorted(last)]
 
 
+@settings(max_examples=200, deadline=None)
+@given(st.lists(_key, max_size=120), st.sampled_from(["increasing", "sorted with repeats", "last pair swapped", "last key repeated"]), st.booleans())
+def test_keys_already_in_order_and_nearly_so(keysort: ModuleType, keys: list[bytes], shape: str, sliced: bool) -> None:
+    """Keys already strictly increasing (a heap-map file this tool wrote in key order, read back)
+    skip the sort; keys that are sorted but repeat one, or strictly increasing but for the last
+    pair, must still be sorted and replayed in full. Against Python's order and a dict built in
+    order, as above."""
+    distinct = sorted(set(keys))
+    if shape == "increasing":
+        keys = distinct
+    elif shape == "sorted with repeats":
+        keys = sorted(keys + keys[:3])
+    elif shape == "last pair swapped":
+        keys = distinct[:-2] + distinct[-2:][::-1]
+    else:
+        keys = distinct + distinct[-1:]
+    assert_byte_order(keys)
+    arr = pa.array([b"pad"] + keys, pa.binary()).slice(1) if sliced else pa.array(keys, pa.binary())
+    _, offsets, data = arr.buffers()
+    got = np.frombuffer(keysort.last_of_each(offsets, data, arr.offset, len(arr), False), np.int64).tolist()
+    last = {k: i for i, k in enumerate(keys)}
+    assert got == [last[k] for k in sorted(last)]
+
+
 def test_large_offsets_are_checked_too(keysort: ModuleType) -> None:
     with pytest.raises(ValueError, match="not those of a binary array"):
         keysort.byte_order(np.array([0, 3, 2**40], np.int64).tobytes(), b"abcd", 0, 2, True)
