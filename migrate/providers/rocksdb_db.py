@@ -39,6 +39,13 @@ except ImportError:  # not built: Python lists and pa.array (_collect_py)
 
 # A scan batch also stops once its keys or its values reach this many bytes (rows of large values).
 BATCH_BYTES = 64 << 20
+# A scan reads its table files this many bytes at a time (RocksDB's ReadOptions.readahead_size;
+# without it the iterator's own readahead grows from 8 KiB to 256 KiB, one pread each). Measured
+# on 24 partitions of the 10M-key RocksDB benchmark checkpoint (tables of about 6 MB), four
+# alternating rounds in one process: 0.317-0.336 CPU us per row without, 0.310-0.321 at 2 MiB,
+# 0.289-0.311 at 4 MiB, 0.278-0.287 at 8 MiB, the system time about halved. One buffer of this
+# size per scan, and a worker scans one store at a time.
+SCAN_READAHEAD = 8 << 20
 
 FORMAT_VERSION_CONF = "spark.sql.streaming.stateStore.rocksdb.formatVersion"
 COMPRESSION_CONF = "spark.sql.streaming.stateStore.rocksdb.compression"
@@ -153,6 +160,7 @@ def iterate(
         scan = ReadOptions()
         scan.fill_cache(False)
         scan.set_verify_checksums(True)
+        scan.set_readahead_size(SCAN_READAHEAD)
         rows = iter(db.items(read_opt=scan))
         last: bytes | None = None
         while True:
