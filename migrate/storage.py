@@ -406,9 +406,11 @@ class Location:
                 tmp = os.path.join(directory, f".stateshift-{uuid.uuid4().hex}.tmp")
                 with open(tmp, "wb") as f:
                     half = len(data) // 2
-                    f.write(data[:half])
+                    view = memoryview(data)  # halves without copies of the data
+                    f.write(view[:half])
                     faults.reached("mid-file")
-                    f.write(data[half:])
+                    f.write(view[half:])
+                    del view
                     f.flush()
                     os.fsync(f.fileno())
                 os.replace(tmp, target)

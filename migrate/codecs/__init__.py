@@ -19,6 +19,7 @@ older versions were written with another codec still reads.
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from types import MappingProxyType
 from typing import Protocol, runtime_checkable
 
@@ -90,6 +91,14 @@ def codec_for(name: str, where: str = "") -> Codec:
     return _CODECS[short][0]
 
 
+def compress_parts(codec: Codec, parts: Iterable[bytes | bytearray | memoryview]) -> bytes:
+    """The stream of the parts' bytes one after the other: by the codec's own ``compress_parts``
+    where it has one (lz4: each part compressed as it comes, the input never held joined), else
+    ``compress`` of the parts joined."""
+    own = getattr(codec, "compress_parts", None)
+    return own(parts) if own is not None else codec.compress(b"".join(parts))
+
+
 def codec_of_stream(data: bytes | memoryview, conf_name: str, where: str = "") -> Codec:
     """The codec that wrote ``data``, told from its first bytes; ``conf_name`` (the codec the conf
     names) when the bytes match no known stream, so that codec's reader reports what is wrong.
@@ -105,4 +114,4 @@ def codec_of_stream(data: bytes | memoryview, conf_name: str, where: str = "") -
     return codec_for(conf_name, where)
 
 
-__all__ = ["CODEC_NAMES", "Codec", "codec_for", "codec_of_stream"]
+__all__ = ["CODEC_NAMES", "Codec", "codec_for", "codec_of_stream", "compress_parts"]

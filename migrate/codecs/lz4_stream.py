@@ -21,12 +21,15 @@ that are not another stream, bad lengths, failed checksums.
 A well-formed stream is decoded by the compiled helper ``_lz4stream`` when it is built and the
 system's liblz4 and libxxhash load (one pass, every block straight into the output); anything it
 does not take, and every stream when it is not there, goes through :meth:`Lz4BlockStream._decompress_py`,
-the reference, which also names what is wrong with a bad stream.
+the reference, which also names what is wrong with a bad stream. Streams are written by the same
+helper part by part (:meth:`Lz4BlockStream.compress_parts`), else by
+:meth:`Lz4BlockStream._compress_py`, the reference.
 """
 
 from __future__ import annotations
 
 import struct
+from collections.abc import Iterable
 from dataclasses import dataclass
 
 import lz4.block
@@ -153,6 +156,29 @@ class Lz4BlockStream:
         return out
 
     def compress(self, data: bytes) -> bytes:
+        return self.compress_parts([data])
+
+    def compress_parts(self, parts: Iterable[bytes | bytearray | memoryview]) -> bytes:
+        """The stream of the parts' bytes one after the other, blocks spanning parts as if they were
+        joined. By the compiled writer when it is loaded: each part is compressed as it comes, its
+        last short block carried into the next, so the input is never held joined; else the parts
+        are joined for :meth:`_compress_py`, the reference. Measured (benchmarks/results/
+        2026-12-04-ab-lz4-compress.md): see the commit that brought it."""
+        if _lz4stream is None:
+            return self._compress_py(b"".join(parts))
+        level = level_for(self.block_size)
+        out: list[bytes] = []
+        tail = b""
+        for part in parts:
+            blocks, tail = _lz4stream.compress(tail, part, self.block_size, level, XXHASH_SEED, CHECKSUM_MASK, False)
+            if blocks:
+                out.append(blocks)
+        blocks, _ = _lz4stream.compress(tail, b"", self.block_size, level, XXHASH_SEED, CHECKSUM_MASK, True)
+        out.append(blocks)
+        return out[0] if len(out) == 1 else b"".join(out)
+
+    def _compress_py(self, data: bytes) -> bytes:
+        """The reference writer: each block by ``lz4.block``, its checksum by ``xxhash``."""
         level = level_for(self.block_size)
         view = memoryview(data)
         out: list[bytes] = []

@@ -37,7 +37,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from ..buffers import binary_args, plain_binary
-from ..codecs import codec_for, codec_of_stream
+from ..codecs import codec_for, codec_of_stream, compress_parts
 from ..codecs.hadoop_crc import crc_name, make_crc, verify_crc
 from ..errors import CorruptInput, Unsupported
 from ..storage import Entry
@@ -329,14 +329,18 @@ def _last_writes_dictionary(keys: pa.Array) -> np.ndarray:
 
 
 def frame_records(batches: Iterable[pa.RecordBatch]) -> bytes:
-    """Records of every row plus the end marker, uncompressed (vectorised per batch)."""
-    parts: list[bytes] = []
+    """Records of every row plus the end marker, uncompressed, as one buffer."""
+    return b"".join(framed_parts(batches))
+
+
+def framed_parts(batches: Iterable[pa.RecordBatch]) -> Iterator[bytes]:
+    """The records of each batch as it comes (framed per batch), then the end marker: what
+    :func:`frame_records` joins, for a codec that compresses part by part
+    (:func:`~migrate.codecs.compress_parts`), so the file's records are never held joined."""
     for batch in batches:
-        if batch.num_rows == 0:
-            continue
-        parts.append(_frame_batch(batch))
-    parts.append(_END)
-    return b"".join(parts)
+        if batch.num_rows:
+            yield _frame_batch(batch)
+    yield _END
 
 
 def _offsets(arr: pa.Array) -> tuple[np.ndarray, np.ndarray]:
@@ -458,7 +462,7 @@ class HDFSProvider(Provider):
     ) -> list[WrittenFile]:
         name = f"{version}.snapshot"
         where = store.describe(name)
-        data = codec_for(ctx.codec, where).compress(frame_records(batches))
+        data = compress_parts(codec_for(ctx.codec, where), framed_parts(batches))
         crc_rel = f"{store.rel}/{crc_name(name)}"
         # never leave a stale sidecar beside a rewritten file: drop it before the data changes
         # (sidecars only live on local disk; on object stores this would be a wasted DELETE)

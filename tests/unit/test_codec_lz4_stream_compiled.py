@@ -3,8 +3,15 @@ decoder (``Lz4BlockStream._decompress_py``, the reference) for every well-formed
 declines (None) exactly the streams the reference refuses, so the reference names the problem:
 hypothesis data of every kind through every block size, streams back to back, stored (RAW)
 blocks, hand-built blocks from the published LZ4 block format, and every truncation and every
-single flipped byte of a small stream. test_codec_lz4_stream.py runs its checks through
-``Lz4BlockStream.decompress``, which takes this decoder when it is loaded.
+single flipped byte of a small stream. The streams these tests decode are written by the Python
+writer (``Lz4BlockStream._compress_py``, the reference). test_codec_lz4_stream.py runs its checks
+through ``Lz4BlockStream.decompress`` and ``compress``, which take the helper when it is loaded.
+
+The compiled writer (``compress``, used part by part by ``Lz4BlockStream.compress_parts``) is held
+to the reference writer: the same blocks (lengths, methods, checksums by the xxhash package), the
+same bytes whenever the loaded liblz4 is the version the python lz4 package bundles, and every
+stream it writes decoded by the reference decoder and by ``lz4.block`` block by block, however the
+input is cut into parts.
 
 Under ``CI=true`` the system's liblz4 and libxxhash must load (``available()``); outside CI a
 missing extension skips these tests (as in test_digest_compiled.py).
@@ -71,7 +78,7 @@ def payloads() -> st.SearchStrategy[bytes]:
 @settings(max_examples=200, deadline=None)
 @given(data=payloads(), block_size=st.sampled_from([64, 100, 1024, 32 * 1024, 1 << 16]))
 def test_same_bytes_as_the_reference(compiled: ModuleType, data: bytes, block_size: int) -> None:
-    stream = Lz4BlockStream(block_size=block_size).compress(data)
+    stream = Lz4BlockStream(block_size=block_size)._compress_py(data)
     out = fast(compiled, stream)
     assert out is not None
     assert isinstance(out, bytearray)
@@ -81,7 +88,7 @@ def test_same_bytes_as_the_reference(compiled: ModuleType, data: bytes, block_si
 @settings(max_examples=50, deadline=None)
 @given(parts=st.lists(payloads(), min_size=1, max_size=4))
 def test_streams_back_to_back(compiled: ModuleType, parts: list[bytes]) -> None:
-    stream = b"".join(Lz4BlockStream(block_size=256).compress(p) for p in parts)
+    stream = b"".join(Lz4BlockStream(block_size=256)._compress_py(p) for p in parts)
     assert fast(compiled, stream) == b"".join(parts) == reference(stream)
 
 
@@ -108,7 +115,7 @@ def test_empty_streams(compiled: ModuleType) -> None:
 
 def test_every_truncation_and_every_flipped_byte(compiled: ModuleType) -> None:
     data = (b"sensor-17;" * 30) + os.urandom(200) + b"\x00" * 400
-    stream = Lz4BlockStream(block_size=256).compress(data)
+    stream = Lz4BlockStream(block_size=256)._compress_py(data)
     for cut in range(len(stream)):
         assert fast(compiled, stream[:cut]) is None, cut
         assert reference(stream[:cut]) is None, cut
@@ -131,7 +138,7 @@ def test_headers_that_claim_too_much_are_declined_without_allocating(compiled: M
 
 def test_takes_any_buffer(compiled: ModuleType) -> None:
     data = b"meter-reading " * 500
-    stream = Lz4BlockStream(block_size=1024).compress(data)
+    stream = Lz4BlockStream(block_size=1024)._compress_py(data)
     assert fast(compiled, bytearray(stream)) == data
     assert fast(compiled, memoryview(b"xx" + stream)[2:]) == data
 
@@ -139,7 +146,7 @@ def test_takes_any_buffer(compiled: ModuleType) -> None:
 def test_the_codec_uses_the_compiled_decoder_when_loaded(compiled: ModuleType, monkeypatch: pytest.MonkeyPatch) -> None:
     assert lz4_stream._lz4stream is compiled
     data = b"queue-depth " * 700
-    stream = Lz4BlockStream().compress(data)
+    stream = Lz4BlockStream()._compress_py(data)
     calls = []
     monkeypatch.setattr(Lz4BlockStream, "_decompress_py", lambda self, d, w: calls.append(w) or bytearray())
     assert Lz4BlockStream().decompress(stream, WHERE) == data and not calls  # taken by the compiled decoder
@@ -158,8 +165,116 @@ def test_the_import_check_values_agree_with_the_reference_libraries() -> None:
 
 def test_without_the_compiled_decoder_the_reference_decodes(monkeypatch: pytest.MonkeyPatch) -> None:
     data = b"pump-pressure " * 900
-    stream = Lz4BlockStream().compress(data)
+    stream = Lz4BlockStream()._compress_py(data)
     monkeypatch.setattr(lz4_stream, "_lz4stream", None)
     assert Lz4BlockStream().decompress(stream, WHERE) == data
     with pytest.raises(CorruptInput, match="missing end mark"):
         Lz4BlockStream().decompress(stream[:-21], WHERE)
+
+
+# ------------------------------------------------------------------------ the compiled writer
+
+
+def blocks_of(stream: bytes) -> list[tuple[int, int, int, int]]:
+    """(token, compressed length, original length, checksum) of every block header, the end mark
+    included, each payload checked against its header with ``lz4.block`` (the reference library)
+    and the xxhash package."""
+    out = []
+    pos = 0
+    while pos < len(stream):
+        magic, token, comp, orig, check = struct.unpack_from("<8sBiiI", stream, pos)
+        assert magic == b"LZ4Block"
+        payload = stream[pos + 21 : pos + 21 + comp]
+        if orig:
+            raw = payload if token & 0xF0 == 0x10 else lz4.block.decompress(payload, uncompressed_size=orig)
+            assert len(raw) == orig and check_of(raw) == check
+        out.append((token, comp, orig, check))
+        pos += 21 + comp
+    assert pos == len(stream)
+    return out
+
+
+def cut(data: bytes, cuts: list[int]) -> list[bytes]:
+    points = sorted({min(c, len(data)) for c in cuts})
+    return [data[a:b] for a, b in zip([0] + points, points + [len(data)])]
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    data=payloads(),
+    block_size=st.sampled_from([64, 100, 1024, 32 * 1024]),
+    cuts=st.lists(st.integers(0, 20000), max_size=6),
+)
+def test_the_compiled_writer_writes_the_references_blocks(compiled: ModuleType, data: bytes, block_size: int, cuts: list[int]) -> None:
+    codec = Lz4BlockStream(block_size=block_size)
+    expected = codec._compress_py(data)
+    got = codec.compress_parts(cut(data, cuts))
+    assert blocks_of(got) == blocks_of(expected)
+    assert reference(got) == data
+    if compiled.lz4_version() == lz4.library_version_number():  # the same LZ4 library: the same bytes
+        assert got == expected
+    assert codec.compress(data) == codec.compress_parts([data])
+
+
+def test_parts_of_every_kind_and_size(compiled: ModuleType) -> None:
+    data = (b"valve-7;" * 5000) + os.urandom(9000) + b"\x00" * 70000
+    codec = Lz4BlockStream(block_size=1024)
+    expected_blocks = blocks_of(codec._compress_py(data))
+    for parts in (
+        [data],
+        [b"", data, b""],
+        [data[i : i + 1] for i in range(0, 5000)] + [data[5000:]],  # one byte at a time, then the rest
+        [bytearray(data[:777]), memoryview(data)[777:4000], data[4000:]],
+        cut(data, [1023, 1024, 1025, 2048, 50000]),
+    ):
+        got = codec.compress_parts(iter(parts))
+        assert blocks_of(got) == expected_blocks
+        assert reference(got) == data
+
+
+def test_incompressible_blocks_are_stored_and_repeats_compressed(compiled: ModuleType) -> None:
+    noise, calm = os.urandom(4096), b"\x00" * 4096
+    tokens = [t for t, _, orig, _ in blocks_of(Lz4BlockStream(block_size=1024).compress(noise + calm)) if orig]
+    assert tokens == [0x10] * 4 + [0x20] * 4  # level 0 for 1 KiB blocks; RAW, then LZ4
+    assert blocks_of(Lz4BlockStream(block_size=1024).compress(b"")) == [(0x10, 0, 0, 0)]  # the end mark alone
+
+
+def test_the_compiled_writer_returns_the_tail(compiled: ModuleType) -> None:
+    def call(prefix: bytes, data: bytes, final: bool) -> tuple[bytes, bytes]:
+        return compiled.compress(prefix, data, 64, 0, XXHASH_SEED, CHECKSUM_MASK, final)
+
+    blocks, tail = call(b"", b"x" * 150, False)
+    assert tail == b"x" * 22 and [b[2] for b in blocks_of(blocks)] == [64, 64]
+    blocks, tail = call(b"ab", b"c" * 10, False)  # no whole block yet: everything is the tail
+    assert blocks == b"" and tail == b"ab" + b"c" * 10
+    blocks, tail = call(b"p" * 63, b"q" * 70, False)  # the first block spans prefix and data
+    assert tail == b"q" * 5
+    assert reference(blocks + header(0x10, 0, 0, 0)) == b"p" * 63 + b"q" * 65
+    blocks, tail = call(b"p" * 20, b"", True)
+    assert tail == b"" and reference(blocks) == b"p" * 20 and blocks_of(blocks)[-1] == (0x10, 0, 0, 0)
+
+
+def test_the_compiled_writer_refuses_bad_arguments(compiled: ModuleType) -> None:
+    with pytest.raises(ValueError, match="prefix must be shorter"):
+        compiled.compress(b"x" * 64, b"", 64, 0, XXHASH_SEED, CHECKSUM_MASK, False)
+    for block_size, level in ((63, 0), ((1 << 25) + 1, 0), (64, 16), (64, -1)):
+        with pytest.raises(ValueError, match="block_size must be"):
+            compiled.compress(b"", b"abc", block_size, level, XXHASH_SEED, CHECKSUM_MASK, True)
+
+
+def test_the_loaded_lz4_version_is_a_version(compiled: ModuleType) -> None:
+    # LZ4_versionNumber(): major * 10000 + minor * 100 + release (lz4.h, from memory); Debian 12 ships 1.9.4
+    assert 10700 <= compiled.lz4_version() < 20000
+
+
+def test_without_the_compiled_writer_the_reference_writes(monkeypatch: pytest.MonkeyPatch) -> None:
+    data = b"flow-rate " * 4000
+    parts = [data[:1000], data[1000:]]
+    with_helper = Lz4BlockStream().compress_parts(parts)
+    monkeypatch.setattr(lz4_stream, "_lz4stream", None)
+    calls = []
+    real = Lz4BlockStream._compress_py
+    monkeypatch.setattr(Lz4BlockStream, "_compress_py", lambda self, d: calls.append(len(d)) or real(self, d))
+    without = Lz4BlockStream().compress_parts(iter(parts))
+    assert calls == [len(data)] and blocks_of(without) == blocks_of(with_helper)
+    assert Lz4BlockStream().decompress(without, WHERE) == data

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from migrate.codecs import CODEC_NAMES, Codec, codec_for
+from migrate.codecs import CODEC_NAMES, Codec, codec_for, compress_parts
 from migrate.errors import Unsupported
 
 # The engine's codec class names (org.apache.spark.io.*; value of CompressionCodec's short-name
@@ -38,3 +38,13 @@ def test_unknown_names_are_unsupported_and_name_the_source(bad: str) -> None:
     assert info.value.path == "cp/offsets/7"
     assert "cp/offsets/7" in str(info.value)
     assert "\n" not in str(info.value)
+
+
+@pytest.mark.parametrize("short", CODEC_NAMES)
+def test_compress_parts_writes_the_stream_of_the_parts_joined(short: str) -> None:
+    """Every codec, whether it compresses part by part (lz4) or joins the parts first: the stream
+    decodes, by the codec's own reader, to the parts' bytes one after the other."""
+    codec = codec_for(short)
+    parts = [b"gate-3 open;" * 300, b"", bytearray(b"\x00" * 5000), memoryview(b"gate-3 shut;" * 200)]
+    stream = compress_parts(codec, iter(parts))
+    assert bytes(codec.decompress(stream, "parts")) == b"".join(bytes(p) for p in parts)
