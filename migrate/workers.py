@@ -28,6 +28,7 @@ from typing import Any
 # own imports before (seen in a worker's modules after its first partition; that partition took
 # about 0.13 CPU s against 0.06 for the next ones, 64-partition convert of 1M keys).
 PRELOAD = [
+    "migrate._server_exit",  # first: its exit handler then runs after those of the modules below
     "migrate.commands.convert", "migrate.commands.export", "migrate.commands.import_archive",
     "migrate.providers.hdfs", "migrate.providers.rocksdb", "numpy.ma",
     "pyarrow.compute", "pyarrow.parquet", "rocksdict", "pandas",
