@@ -22,11 +22,7 @@
  *
  * available() -> bool
  *     Whether the system's liblz4 and libxxhash loaded and passed their checks at import.
- *
- * lz4_version() -> int
- *     The loaded liblz4's LZ4_versionNumber() (major * 10000 + minor * 100 + release), 0 when
- *     it is not loaded: equal versions compress equal blocks to equal bytes (the tests compare
- *     with the python lz4 package's blocks when its bundled library is the same version).
+
  *
  * Why: the Python decoder costs a Python loop turn, a fresh 32 KiB bytes object, and a copy
  * into a growing bytearray (with its reallocations) per block. A native profile of the 10M-key
@@ -74,7 +70,6 @@
 
 typedef int (*lz4_fn)(const char *src, char *dst, int compressed_size, int dst_capacity);
 typedef int (*lz4_bound_fn)(int input_size);
-typedef int (*lz4_version_fn)(void);
 typedef unsigned int (*xxh32_fn)(const void *input, size_t length, unsigned int seed);
 
 /* LZ4_decompress_safe(src, dst, compressedSize, dstCapacity) and LZ4_compress_default(src, dst,
@@ -84,7 +79,6 @@ typedef unsigned int (*xxh32_fn)(const void *input, size_t length, unsigned int 
 static lz4_fn lz4_decompress_safe = NULL;
 static lz4_fn lz4_compress_default = NULL;
 static lz4_bound_fn lz4_compress_bound = NULL;
-static int lz4_version_number = 0;
 static xxh32_fn xxh32 = NULL;
 
 static int32_t
@@ -118,9 +112,8 @@ load_libraries(void)
     lz4_fn d = lz4 ? (lz4_fn)dlsym(lz4, "LZ4_decompress_safe") : NULL;
     lz4_fn c = lz4 ? (lz4_fn)dlsym(lz4, "LZ4_compress_default") : NULL;
     lz4_bound_fn b = lz4 ? (lz4_bound_fn)dlsym(lz4, "LZ4_compressBound") : NULL;
-    lz4_version_fn v = lz4 ? (lz4_version_fn)dlsym(lz4, "LZ4_versionNumber") : NULL;
     xxh32_fn h = xxh ? (xxh32_fn)dlsym(xxh, "XXH32") : NULL;
-    int ok = d != NULL && c != NULL && b != NULL && v != NULL && h != NULL;
+    int ok = d != NULL && c != NULL && b != NULL && h != NULL;
     if (ok) {
         /* An LZ4 block by the block format's rules: token 0x34 (3 literals, match length 4 + 4),
          * "abc", offset 3 (little-endian), so the match copies "abcabcab" over itself; then the
@@ -153,7 +146,6 @@ load_libraries(void)
     lz4_decompress_safe = d;
     lz4_compress_default = c;
     lz4_compress_bound = b;
-    lz4_version_number = v();
     xxh32 = h;
 }
 
@@ -380,12 +372,6 @@ done:
 }
 
 static PyObject *
-lz4_version(PyObject *self, PyObject *unused)
-{
-    return PyLong_FromLong(lz4_version_number);
-}
-
-static PyObject *
 available(PyObject *self, PyObject *unused)
 {
     return PyBool_FromLong(lz4_decompress_safe != NULL);
@@ -397,7 +383,6 @@ static PyMethodDef methods[] = {
     {"compress", compress, METH_VARARGS,
      "compress(prefix, data, block_size, level, seed, mask, final) -> (the blocks of prefix + data, the tail after them)"},
     {"available", available, METH_NOARGS, "available() -> whether liblz4 and libxxhash loaded and passed their checks"},
-    {"lz4_version", lz4_version, METH_NOARGS, "lz4_version() -> LZ4_versionNumber() of the loaded liblz4, 0 when not loaded"},
     {NULL, NULL, 0, NULL},
 };
 

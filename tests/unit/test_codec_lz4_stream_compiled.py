@@ -8,10 +8,9 @@ writer (``Lz4BlockStream._compress_py``, the reference). test_codec_lz4_stream.p
 through ``Lz4BlockStream.decompress`` and ``compress``, which take the helper when it is loaded.
 
 The compiled writer (``compress``, used part by part by ``Lz4BlockStream.compress_parts``) is held
-to the reference writer: the same blocks (lengths, methods, checksums by the xxhash package), the
-same bytes whenever the loaded liblz4 is the version the python lz4 package bundles, and every
-stream it writes decoded by the reference decoder and by ``lz4.block`` block by block, however the
-input is cut into parts.
+to the reference writer: the same blocks (level, original lengths, checksums by the xxhash
+package; a block stored exactly when it does not shrink), and every stream it writes decoded by
+the reference decoder and by ``lz4.block`` block by block, however the input is cut into parts.
 
 Under ``CI=true`` the system's liblz4 and libxxhash must load (``available()``); outside CI a
 missing extension skips these tests (as in test_digest_compiled.py).
@@ -194,6 +193,19 @@ def blocks_of(stream: bytes) -> list[tuple[int, int, int, int]]:
     return out
 
 
+def framing(stream: bytes) -> list[tuple[int, int, int]]:
+    """What any writer of the stream must agree on: each block's level, original length and
+    checksum. Whether a block is stored or compressed, and its compressed bytes, may differ between
+    LZ4 entry points even of one library version (seen: an 18-byte block the python lz4 package
+    stores, LZ4_compress_default shrinks to 15 bytes), and each stream's blocks are checked to
+    decode by blocks_of; a block is stored exactly when it does not shrink."""
+    out = []
+    for token, comp, orig, check in blocks_of(stream):
+        assert (token & 0xF0 == 0x10) == (comp == orig), (token, comp, orig)
+        out.append((token & 0x0F, orig, check))
+    return out
+
+
 def cut(data: bytes, cuts: list[int]) -> list[bytes]:
     points = sorted({min(c, len(data)) for c in cuts})
     return [data[a:b] for a, b in zip([0] + points, points + [len(data)])]
@@ -209,17 +221,15 @@ def test_the_compiled_writer_writes_the_references_blocks(compiled: ModuleType, 
     codec = Lz4BlockStream(block_size=block_size)
     expected = codec._compress_py(data)
     got = codec.compress_parts(cut(data, cuts))
-    assert blocks_of(got) == blocks_of(expected)
+    assert framing(got) == framing(expected)
     assert reference(got) == data
-    if compiled.lz4_version() == lz4.library_version_number():  # the same LZ4 library: the same bytes
-        assert got == expected
-    assert codec.compress(data) == codec.compress_parts([data])
+    assert codec.compress(data) == codec.compress_parts([data])  # however the input is cut: the same stream
 
 
 def test_parts_of_every_kind_and_size(compiled: ModuleType) -> None:
     data = (b"valve-7;" * 5000) + os.urandom(9000) + b"\x00" * 70000
     codec = Lz4BlockStream(block_size=1024)
-    expected_blocks = blocks_of(codec._compress_py(data))
+    expected_blocks = framing(codec._compress_py(data))
     for parts in (
         [data],
         [b"", data, b""],
@@ -228,7 +238,7 @@ def test_parts_of_every_kind_and_size(compiled: ModuleType) -> None:
         cut(data, [1023, 1024, 1025, 2048, 50000]),
     ):
         got = codec.compress_parts(iter(parts))
-        assert blocks_of(got) == expected_blocks
+        assert framing(got) == expected_blocks
         assert reference(got) == data
 
 
@@ -262,11 +272,6 @@ def test_the_compiled_writer_refuses_bad_arguments(compiled: ModuleType) -> None
             compiled.compress(b"", b"abc", block_size, level, XXHASH_SEED, CHECKSUM_MASK, True)
 
 
-def test_the_loaded_lz4_version_is_a_version(compiled: ModuleType) -> None:
-    # LZ4_versionNumber(): major * 10000 + minor * 100 + release (lz4.h, from memory); Debian 12 ships 1.9.4
-    assert 10700 <= compiled.lz4_version() < 20000
-
-
 def test_without_the_compiled_writer_the_reference_writes(monkeypatch: pytest.MonkeyPatch) -> None:
     data = b"flow-rate " * 4000
     parts = [data[:1000], data[1000:]]
@@ -276,5 +281,5 @@ def test_without_the_compiled_writer_the_reference_writes(monkeypatch: pytest.Mo
     real = Lz4BlockStream._compress_py
     monkeypatch.setattr(Lz4BlockStream, "_compress_py", lambda self, d: calls.append(len(d)) or real(self, d))
     without = Lz4BlockStream().compress_parts(iter(parts))
-    assert calls == [len(data)] and blocks_of(without) == blocks_of(with_helper)
+    assert calls == [len(data)] and framing(without) == framing(with_helper)
     assert Lz4BlockStream().decompress(without, WHERE) == data
