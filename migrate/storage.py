@@ -32,12 +32,11 @@ from __future__ import annotations
 
 import os
 import re
+import shutil
 import uuid
 from dataclasses import dataclass, field
 from typing import IO, Any, NoReturn
 from urllib.parse import parse_qsl, unquote, urlsplit, urlunsplit
-
-import fsspec
 
 from . import faults
 from .errors import CorruptInput, StateshiftError, UsageError
@@ -198,18 +197,39 @@ def _protocols(fs: Any) -> tuple[str, ...]:
     return tuple(protocol) if isinstance(protocol, (tuple, list)) else (protocol,)
 
 
+# fsspec's local filesystem names itself so (``LocalFileSystem.protocol``)
+LOCAL_PROTOCOLS = ("file", "local")
+
+
+def _local_fs() -> Any:
+    """fsspec's local filesystem, imported on first use (fsspec and the asyncio it imports took
+    about 50 ms of each process's start; on local disk most calls go to ``os`` directly)."""
+    import fsspec
+
+    return fsspec.filesystem("file")
+
+
 @dataclass(frozen=True)
 class Location:
-    """A root URL on one fsspec filesystem."""
+    """A root URL on one fsspec filesystem. On local disk (``driver`` None, opened without storage
+    options) the fsspec filesystem is made only when a call needs one (:attr:`fs`): listing,
+    reading, writing, copying, deleting and probing go to ``os`` and ``shutil`` there, so a
+    process that only works on local disk, such as a worker, never imports fsspec."""
 
-    fs: Any
+    driver: Any  # the fsspec filesystem; None for local disk
     root: str
     url: str
     readonly: bool = True
     options: dict[str, Any] = field(default_factory=dict, compare=False, repr=False)
+    protocols: tuple[str, ...] = LOCAL_PROTOCOLS
 
     def __repr__(self) -> str:  # never the raw URL: it may carry credentials
         return f"Location({self.display!r}, readonly={self.readonly})"
+
+    @property
+    def fs(self) -> Any:
+        """The fsspec filesystem (for local disk made on first use)."""
+        return self.driver if self.driver is not None else _local_fs()
 
     @property
     def display(self) -> str:
@@ -217,12 +237,11 @@ class Location:
 
     @property
     def is_local(self) -> bool:
-        names = _protocols(self.fs)
-        return "file" in names or "local" in names
+        return any(p in LOCAL_PROTOCOLS for p in self.protocols)
 
     @property
     def _object_store(self) -> bool:
-        return any(p in _OBJECT_STORES for p in _protocols(self.fs))
+        return any(p in _OBJECT_STORES for p in self.protocols)
 
     def secrets(self) -> list[str]:
         """Literal secret values this location was opened with (for masking free text)."""
@@ -239,7 +258,7 @@ class Location:
 
     def child(self, rel: str, readonly: bool | None = None) -> Location:
         ro = self.readonly if readonly is None else readonly
-        return Location(self.fs, self.path(rel), self.describe(rel), ro, self.options)
+        return Location(self.driver, self.path(rel), self.describe(rel), ro, self.options, self.protocols)
 
     def _fail(self, exc: BaseException, rel: str, action: str) -> NoReturn:
         """Raise the one-line, credential-free error for a failed storage request."""
@@ -317,6 +336,8 @@ class Location:
 
     def exists(self, rel: str = "") -> bool:
         try:
+            if self.is_local:  # what fsspec's local exists does
+                return os.path.exists(self.path(rel))
             return bool(self.fs.exists(self.path(rel)))
         except Exception as exc:  # noqa: BLE001
             self._fail(exc, rel, "check that it exists")
@@ -328,7 +349,7 @@ class Location:
                 with open(self.path(rel), "rb") as f:
                     return f.read()
             # s3fs asks for the size first (a HEAD) unless it reads with one connection
-            kwargs = {"max_concurrency": 1} if "s3" in _protocols(self.fs) else {}
+            kwargs = {"max_concurrency": 1} if "s3" in self.protocols else {}
             return self.fs.cat_file(self.path(rel), **kwargs)
         except FileNotFoundError as exc:
             raise CorruptInput("file is missing", self.describe(rel)) from exc
@@ -346,6 +367,8 @@ class Location:
 
     def open_read(self, rel: str) -> IO[bytes]:
         try:
+            if self.is_local:
+                return open(self.path(rel), "rb")
             return self.fs.open(self.path(rel), "rb")
         except FileNotFoundError as exc:
             raise CorruptInput("file is missing", self.describe(rel)) from exc
@@ -369,6 +392,9 @@ class Location:
     def get_file(self, rel: str, local_path: str) -> None:
         """Download one file to local disk (one GET on object stores)."""
         try:
+            if self.is_local:  # fsspec's local get_file is this copy
+                shutil.copyfile(self.path(rel), local_path)
+                return
             self.fs.get_file(self.path(rel), local_path)
         except FileNotFoundError as exc:
             raise CorruptInput("file is missing", self.describe(rel)) from exc
@@ -453,6 +479,11 @@ class Location:
         try:
             if recursive and self._object_store:
                 self._remove_tree(target)
+            elif self.is_local:
+                if recursive and os.path.isdir(target) and not os.path.islink(target):
+                    shutil.rmtree(target)
+                else:
+                    os.remove(target)  # fsspec's local rm_file; a link is removed, not followed
             elif recursive:
                 self.fs.rm(target, recursive=True)
             else:
@@ -469,7 +500,7 @@ class Location:
         parent, _, stem = target.rpartition("/")
         found = self.fs.find(parent, prefix=stem) if parent else self.fs.find(target)
         doomed = sorted({p for p in found if p.rstrip("/") == target or p.startswith(target + "/")})
-        if doomed and "s3" in _protocols(self.fs):
+        if doomed and "s3" in self.protocols:
             self._s3_bulk_delete(doomed)
         elif doomed:
             self.fs.rm(doomed)
@@ -503,7 +534,13 @@ def open_location(url: str, storage_options: dict[str, Any] | None = None, reado
     options = dict(storage_options or {})
     shown = mask_url(url)
     secrets = secret_values(options) + url_secrets(url)
+    if not options and _plain_local(url):  # the root and URL fsspec's local filesystem gives; no fsspec needed (see Location)
+        if url.startswith("file://"):
+            return Location(None, url[len("file://"):].rstrip("/") or "/", url.rstrip("/"), readonly, options)
+        return Location(None, os.path.abspath(url), os.path.abspath(url).rstrip("/"), readonly, options)
     try:
+        import fsspec
+
         fs, root = fsspec.core.url_to_fs(url, **options)
         # fsspec shares one instance per (protocol, options) in a process; drop what it has listed
         # so far, so that no listing made before this open is trusted by this command
@@ -529,4 +566,14 @@ def open_location(url: str, storage_options: dict[str, Any] | None = None, reado
     if "://" not in url:
         url = os.path.abspath(url)
         root = os.path.abspath(root)
-    return Location(fs=fs, root=root, url=url.rstrip("/"), readonly=readonly, options=options)
+    return Location(fs, root, url.rstrip("/"), readonly, options, _protocols(fs))
+
+
+def _plain_local(url: str) -> bool:
+    """A local path, or a ``file://`` URL with an absolute path, that fsspec would open as it is
+    (no chained ``::`` URL, no ``~`` to expand)."""
+    if "::" in url or url.startswith("~"):
+        return False
+    if url.startswith("file://"):
+        return url[len("file://"):].startswith("/")
+    return "://" not in url

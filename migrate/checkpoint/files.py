@@ -110,7 +110,7 @@ def engine_root(dst: Location, like: str) -> str:
     m = _SCHEME.match(like)
     scheme = m.group(1) if m and m.group(1) != "file" else None
     if scheme is None:
-        protocol = dst.fs.protocol[0] if isinstance(dst.fs.protocol, (tuple, list)) else dst.fs.protocol
+        protocol = dst.protocols[0]
         scheme = "s3a" if protocol in ("s3", "s3a") else str(protocol)
     return f"{scheme}://{dst.root.strip('/')}"
 

@@ -41,8 +41,7 @@ INCOMPLETE_TEXT = (  # must start with checkpoint.model.INCOMPLETE_PREFIX
 
 
 def _norm(loc: Location) -> tuple[str, str]:
-    protocol = loc.fs.protocol
-    proto = protocol[0] if isinstance(protocol, (tuple, list)) else protocol
+    proto = loc.protocols[0]
     path = os.path.realpath(loc.root) if loc.is_local else loc.root.rstrip("/")
     return str(proto), path.rstrip("/")
 

@@ -138,3 +138,77 @@ def test_a_file_url_lists_and_reads_like_the_plain_path(tmp_path):
     assert url.is_local and url.root == plain.root
     assert url.list_dir("") == plain.list_dir("") and len(url.list_dir("")) == 7
     assert url.read_bytes("sub/inner") == b"abc"
+
+
+@pytest.mark.parametrize("spelling", ["{d}", "{d}/", "rel/x", "./rel/x/../y", "file://{d}", "file://{d}/", "file://{d}/a/../b", "/"])
+def test_a_local_location_has_the_root_and_url_fsspec_gives(tmp_path, monkeypatch, spelling):
+    """Opened without fsspec, a local path or absolute ``file://`` URL gets the root and URL that
+    fsspec's ``url_to_fs`` (the reference) gives, as the tool shaped them before."""
+    import fsspec
+
+    monkeypatch.chdir(tmp_path)
+    url = spelling.format(d=tmp_path / "d")
+    loc = open_location(url)
+    fs, root = fsspec.core.url_to_fs(url)
+    root = root.rstrip("/") or "/"
+    expected_url = url
+    if "://" not in url:
+        expected_url, root = os.path.abspath(url), os.path.abspath(root)
+    assert (loc.root, loc.url) == (root, expected_url.rstrip("/"))
+    assert loc.driver is None and loc.is_local and loc.protocols == tuple(fs.protocol)
+
+
+def test_local_work_never_imports_fsspec(tmp_path):
+    """Everything a worker does on local disk (list, read, stream, probe, write, upload, download,
+    link, delete a file and a tree), in a fresh interpreter, leaves fsspec (and the asyncio it
+    imports: about 50 ms of every process's start) unimported; the filesystem object is still
+    there on demand."""
+    import subprocess
+    import sys
+    import textwrap
+
+    script = textwrap.dedent(
+        f"""
+        import os, pickle, sys
+        from migrate.storage import open_location
+        loc = pickle.loads(pickle.dumps(open_location({str(tmp_path / 'loc')!r}, readonly=False)))
+        loc.makedirs("a")
+        loc.write_bytes("a/f", b"12345")
+        assert loc.list_dir("a")["f"].size == 5 and loc.read_bytes("a/f") == b"12345"
+        with loc.open_read("a/f") as f:
+            assert f.read() == b"12345"
+        assert loc.exists("a/f") and not loc.exists("a/g")
+        loc.put_file({str(tmp_path / 'src')!r}, "a/up")
+        loc.get_file("a/up", {str(tmp_path / 'down')!r})
+        assert open({str(tmp_path / 'down')!r}, "rb").read() == b"upload"
+        assert loc.link_file("a/f", {str(tmp_path / 'link')!r})
+        loc.remove("a/f")
+        loc.remove("a/missing")
+        loc.remove("a", recursive=True)
+        assert not os.path.exists(loc.path("a"))
+        assert "fsspec" not in sys.modules and "asyncio" not in sys.modules, "imported"
+        assert type(loc.fs).__name__ == "LocalFileSystem" and "fsspec" in sys.modules
+        print("ok")
+        """
+    )
+    (tmp_path / "src").write_bytes(b"upload")
+    root = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+    done = subprocess.run([sys.executable, "-c", script], cwd=root, capture_output=True, text=True, timeout=60)
+    assert done.returncode == 0 and done.stdout.strip() == "ok", done.stderr
+
+
+def test_local_removes_of_links_trees_and_directories(tmp_path):
+    """A recursive remove deletes a link, never what it points at; a plain remove of a directory
+    is refused in one line; a local path with storage options is opened through fsspec."""
+    loc = open_location(str(tmp_path), readonly=False)
+    (tmp_path / "kept").mkdir()
+    (tmp_path / "kept" / "inside").write_bytes(b"1")
+    os.symlink(tmp_path / "kept", tmp_path / "link")
+    loc.remove("link", recursive=True)
+    assert not os.path.lexists(tmp_path / "link") and (tmp_path / "kept" / "inside").read_bytes() == b"1"
+    with pytest.raises(StateshiftError, match="delete this"):
+        loc.remove("kept")
+    loc.remove("kept", recursive=True)
+    assert not (tmp_path / "kept").exists()
+    with_options = open_location(str(tmp_path), {"auto_mkdir": True})
+    assert with_options.driver is not None and with_options.is_local and with_options.root == str(tmp_path)
