@@ -30,7 +30,7 @@
  * from rows in key order (a convert or import to the heap map) is read back that way to prove it.
  * Measured on eight 156k-key partitions written from the 10M-key RocksDB benchmark checkpoint,
  * three alternating rounds: the heap-map read-back 0.164-0.202 -> 0.137 CPU us per row; the 10M
- * convert RocksDB -> heap map, four alternating pairs of whole commands, 8.99 -> 8.41 CPU s
+ * convert RocksDB -> heap map, four alternating pairs of whole commands, 8.65 -> 8.24 CPU s
  * (medians; benchmarks/results/2026-12-04-ab-presorted-replay.md). Keys in the engine's own file
  * order fail the check at their first or second pair.
  *
