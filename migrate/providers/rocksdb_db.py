@@ -43,8 +43,9 @@ BATCH_BYTES = 64 << 20
 # without it the iterator's own readahead grows from 8 KiB to 256 KiB, one pread each). Measured
 # on 24 partitions of the 10M-key RocksDB benchmark checkpoint (tables of about 6 MB), four
 # alternating rounds in one process: 0.317-0.336 CPU us per row without, 0.310-0.321 at 2 MiB,
-# 0.289-0.311 at 4 MiB, 0.278-0.287 at 8 MiB, the system time about halved. One buffer of this
-# size per scan, and a worker scans one store at a time.
+# 0.289-0.311 at 4 MiB, 0.278-0.287 at 8 MiB, the system time about halved; on whole 10M-key
+# commands the gain is within their noise (benchmarks/results/2026-12-04-ab-scan-readahead.md).
+# One buffer of this size per scan, and a worker scans one store at a time.
 SCAN_READAHEAD = 8 << 20
 
 FORMAT_VERSION_CONF = "spark.sql.streaming.stateStore.rocksdb.formatVersion"
