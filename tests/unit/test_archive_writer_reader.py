@@ -248,3 +248,30 @@ def test_dictionaries_only_for_typed_text_and_statistics_only_for_typed_columns(
         assert not dictionary_encodings & set(columns[number].encodings), number
     for typed in ("key_bay", "key_rack", "value_sum", "value_sum_2", "value_seen"):
         assert columns[typed].is_stats_set and columns[typed].statistics.has_min_max, typed
+
+
+@pytest.mark.parametrize("threads", [1, 2, 4])
+def test_with_files_hashed_at_once_the_first_damaged_file_in_manifest_order_is_named(tmp_path, monkeypatch, threads):
+    """check_archive hashes several files at once (reader.HASH_THREADS); what it reports is still
+    the first file in the manifest's order whose SHA-256 does not match, whatever finishes first,
+    and every file's progress comes in that order until then."""
+    from migrate.archive import reader
+
+    monkeypatch.setattr(reader, "HASH_THREADS", threads)
+    arch = open_location(str(tmp_path / "arch"), readonly=False)
+    files = []
+    for p in range(6):
+        rel = data_file_rel(0, "default", p)
+        w = write_data_file(arch, rel, [rows(8 + p)[0]], decoder_for(SCHEMA_V1, "s"), {})
+        files.append(DataFile(rel, 0, "default", p, 8 + p, w.bytes, w.sha256, w.digest))
+    manifest = Manifest("t", "now", "src", "q", 0, 1, "p", "lz4", 1, (), (), (), (), (), tuple(files))
+    write_manifest(arch, manifest)
+    for p in (2, 4):  # two damaged files: the one listed first is named
+        path = Path(arch.path(files[p].path))
+        data = path.read_bytes()
+        path.write_bytes(data[:-1] + bytes([data[-1] ^ 1]))
+    seen: list[str] = []
+    with pytest.raises(CorruptInput, match="SHA-256 does not match") as info:
+        reader.check_archive(arch, manifest, seen.append)
+    assert "partition=2/" in str(info.value) and "partition=4/" not in str(info.value)
+    assert seen == [files[0].path, files[1].path]
