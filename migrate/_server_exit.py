@@ -22,9 +22,9 @@ import sys
 _SERVER_FILE = os.path.join("multiprocessing", "forkserver.py")
 
 
-def in_fork_server(frame=None) -> bool:
-    """Whether ``frame`` (default: the caller's) runs inside ``multiprocessing.forkserver.main``."""
-    f = sys._getframe(1) if frame is None else frame
+def in_fork_server() -> bool:
+    """Whether the caller runs inside ``multiprocessing.forkserver.main``."""
+    f = sys._getframe(1)
     while f is not None:
         if f.f_code.co_name == "main" and f.f_code.co_filename.endswith(_SERVER_FILE):
             return True

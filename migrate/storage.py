@@ -436,7 +436,6 @@ class Location:
                     f.write(view[:half])
                     faults.reached("mid-file")
                     f.write(view[half:])
-                    del view
                     f.flush()
                     os.fsync(f.fileno())
                 os.replace(tmp, target)

@@ -22,7 +22,6 @@
  *
  * available() -> bool
  *     Whether the system's liblz4 and libxxhash loaded and passed their checks at import.
-
  *
  * Why: the Python decoder costs a Python loop turn, a fresh 32 KiB bytes object, and a copy
  * into a growing bytearray (with its reallocations) per block. A native profile of the 10M-key
