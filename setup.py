@@ -16,7 +16,7 @@ BINARY_H = "migrate/providers/_binary.h"  # shared by the extensions; `depends` 
 setup(
     ext_modules=[
         Extension("migrate.providers._framing", ["migrate/providers/_framing.c"], depends=[BINARY_H], optional=True),
-        Extension("migrate.providers._keysort", ["migrate/providers/_keysort.c"], depends=[BINARY_H], optional=True),
+        Extension("migrate.providers._keysort", ["migrate/providers/_keysort.c"], depends=[BINARY_H], libraries=["dl"], optional=True),
         Extension("migrate.providers._rowpairs", ["migrate/providers/_rowpairs.c"], depends=[BINARY_H], optional=True),
         Extension("migrate._digest", ["migrate/_digest.c"], depends=[BINARY_H], optional=True),
         Extension("migrate.rows._flatrows", ["migrate/rows/_flatrows.c"], depends=[BINARY_H], optional=True),

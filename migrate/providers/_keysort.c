@@ -25,7 +25,14 @@
  *     are one array in file order and the last write of a key wins. Equal keys are adjacent after
  *     the sort; each run's largest position is kept.
  *
- * Both first check, in one pass that stops at the first pair out of order, whether the keys
+ * last_in_file_order(offsets, data, offset, count, large) -> bytes
+ *     The same arguments and checks (and count below 2**32 - 1). Returns the int64 position of
+ *     the last occurrence of each distinct element in increasing order of position: the same
+ *     replay when the rows may come in file order (an export, a convert to the heap map), by a
+ *     hash table instead of a sort (see the function). Defined only when the system's libxxhash
+ *     loads at import, for its XXH3_64bits.
+ *
+ * All three first check, in one pass that stops at the first pair out of order, whether the keys
  * already stand strictly increasing, and then sort nothing: a heap-map snapshot this tool wrote
  * from rows in key order (a convert or import to the heap map) is read back that way to prove it.
  * Measured on eight 156k-key partitions written from the 10M-key RocksDB benchmark checkpoint,
@@ -56,6 +63,7 @@
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
 
+#include <dlfcn.h>
 #include <stdint.h>
 #include <string.h>
 
@@ -453,6 +461,120 @@ last_of_each(PyObject *self, PyObject *args)
     return positions(items, distinct, &k);
 }
 
+/* ---------------------------------------------------------------- last writes in file order */
+
+/* XXH3_64bits(input, length) of the system's libxxhash (xxhash.h, 0.8 and later), loaded by
+ * soname at import like _lz4stream.c does; NULL when it is missing, and then the module has no
+ * last_in_file_order (the caller sorts with last_of_each instead). */
+typedef uint64_t (*xxh3_fn)(const void *, size_t);
+static xxh3_fn xxh3 = NULL;
+
+/* One slot of the open-addressing table: the top 32 bits of the key's hash and its position + 1
+ * (0: empty). */
+typedef struct {
+    uint32_t tag, pos;
+} slot_t;
+
+#define PREFETCH_AHEAD 8
+
+PyDoc_STRVAR(last_in_file_order_doc,
+"last_in_file_order(offsets, data, offset, count, large) -> bytes\n\n"
+"The int64 position of the last occurrence of every distinct element of a binary array, in\n"
+"increasing order of position (see the module source).");
+
+/* The records are read from the last to the first, each key looked up in a hash table (linear
+ * probing, at most half full): the first time a key is met is its last write, and its position
+ * is marked; an older record of it finds it there. The marks are then read in order, so the
+ * positions come out increasing without a sort. The table's slot for a record is fetched
+ * PREFETCH_AHEAD records before it is probed: the probes land anywhere in a table of 8 bytes per
+ * slot, larger than the caches for a big partition. */
+static PyObject *
+last_in_file_order(PyObject *self, PyObject *args)
+{
+    (void)self;
+    PyObject *offsets_obj, *data_obj;
+    Py_ssize_t offset, count;
+    int large;
+    int64_t bytes;
+    keys_t k;
+    if (!PyArg_ParseTuple(args, "OOnnp:last_in_file_order", &offsets_obj, &data_obj, &offset, &count, &large))
+        return NULL;
+    if (count < 0 || (int64_t)count >= (int64_t)UINT32_MAX) {
+        PyErr_SetString(PyExc_ValueError, "count must be from 0 to 2**32 - 2");
+        return NULL;
+    }
+    if (open_binary(&k, offsets_obj, data_obj, offset, large, (int64_t)count, &bytes, "key") < 0)
+        return NULL;
+    int64_t n = (int64_t)count, cap = 16;
+    while (cap < 2 * n)
+        cap <<= 1;
+    slot_t *table = PyMem_RawCalloc((size_t)cap, sizeof(slot_t));
+    unsigned char *keep = PyMem_RawCalloc((size_t)(n ? n : 1), 1);
+    if (table == NULL || keep == NULL) {
+        PyMem_RawFree(table);
+        PyMem_RawFree(keep);
+        release_binary(&k);
+        return PyErr_NoMemory();
+    }
+    int64_t kept = 0;
+    int presorted;
+    Py_BEGIN_ALLOW_THREADS
+    presorted = strictly_increasing(&k, n);  /* as last_of_each: every key once, nothing to look up */
+    if (presorted) {
+        memset(keep, 1, (size_t)n);
+        kept = n;
+    }
+    const unsigned char *data = key_data(&k);
+    uint64_t mask = (uint64_t)cap - 1, ahead[PREFETCH_AHEAD];
+    for (int64_t i = n - 1; !presorted && i >= 0 && i >= n - PREFETCH_AHEAD; i--) {
+        int64_t s = key_start(&k, i);
+        ahead[i % PREFETCH_AHEAD] = xxh3(data + s, (size_t)(key_end(&k, i) - s));
+        __builtin_prefetch(&table[ahead[i % PREFETCH_AHEAD] & mask]);
+    }
+    for (int64_t i = presorted ? -1 : n - 1; i >= 0; i--) {
+        uint64_t h = ahead[i % PREFETCH_AHEAD];
+        if (i >= PREFETCH_AHEAD) {  /* the record PREFETCH_AHEAD before this one takes its ring slot */
+            int64_t j = i - PREFETCH_AHEAD, js = key_start(&k, j);
+            ahead[j % PREFETCH_AHEAD] = xxh3(data + js, (size_t)(key_end(&k, j) - js));
+            __builtin_prefetch(&table[ahead[j % PREFETCH_AHEAD] & mask]);
+        }
+        int64_t s = key_start(&k, i), len = key_end(&k, i) - s;
+        uint32_t tag = (uint32_t)(h >> 32);
+        for (uint64_t at = h & mask;; at = (at + 1) & mask) {
+            slot_t *slot = &table[at];
+            if (slot->pos == 0) {
+                slot->tag = tag;
+                slot->pos = (uint32_t)(i + 1);
+                keep[i] = 1;
+                kept++;
+                break;
+            }
+            if (slot->tag == tag) {
+                int64_t other = (int64_t)slot->pos - 1, os = key_start(&k, other);
+                if (key_end(&k, other) - os == len && memcmp(data + os, data + s, (size_t)len) == 0)
+                    break;  /* a newer record of this key was met first */
+            }
+        }
+    }
+    Py_END_ALLOW_THREADS
+    PyMem_RawFree(table);
+    PyObject *result = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(kept * 8));
+    if (result != NULL) {
+        int64_t *out = (int64_t *)PyBytes_AS_STRING(result), w = 0;
+        for (int64_t i = 0; i < n; i++)
+            if (keep[i])
+                out[w++] = i;
+    }
+    PyMem_RawFree(keep);
+    release_binary(&k);
+    return result;
+}
+
+static PyMethodDef hashed_methods[] = {
+    {"last_in_file_order", last_in_file_order, METH_VARARGS, last_in_file_order_doc},
+    {NULL, NULL, 0, NULL},
+};
+
 static PyMethodDef keysort_methods[] = {
     {"byte_order", byte_order, METH_VARARGS, byte_order_doc},
     {"last_of_each", last_of_each, METH_VARARGS, last_of_each_doc},
@@ -462,7 +584,7 @@ static PyMethodDef keysort_methods[] = {
 static struct PyModuleDef keysort_module = {
     PyModuleDef_HEAD_INIT,
     "migrate.providers._keysort",
-    "The byte-wise order of a binary array's keys, compiled (see migrate.providers.rocksdb_db).",
+    "The byte-wise order of a binary array's keys and the last write of each, compiled (see migrate.providers.rocksdb_db, hdfs).",
     0,
     keysort_methods,
     NULL,
@@ -474,5 +596,19 @@ static struct PyModuleDef keysort_module = {
 PyMODINIT_FUNC
 PyInit__keysort(void)
 {
-    return PyModule_Create(&keysort_module);
+    PyObject *module = PyModule_Create(&keysort_module);
+    if (module == NULL)
+        return NULL;
+    void *lib = dlopen("libxxhash.so.0", RTLD_NOW | RTLD_LOCAL);
+    xxh3 = lib ? (xxh3_fn)dlsym(lib, "XXH3_64bits") : NULL;
+    /* checked before first use: XXH3_64bits of empty input (xxHash's sanity values, from memory;
+     * the same as the reference xxhash package's xxh3_64_intdigest(b"") here) and of a
+     * hand-picked input (that package's value) */
+    if (xxh3 != NULL && (xxh3("", 0) != 0x2D06800538D394C2ULL || xxh3("stateshift", 10) != 0xE78B4E6CD57FC20BULL))
+        xxh3 = NULL;
+    if (xxh3 != NULL && PyModule_AddFunctions(module, hashed_methods) < 0) {
+        Py_DECREF(module);
+        return NULL;
+    }
+    return module;
 }

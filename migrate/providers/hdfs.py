@@ -59,6 +59,10 @@ try:  # the compiled byte-wise sort, whose last_of_each is the replay (see resol
     from . import _keysort
 except ImportError:  # not built: the replay by dictionary encoding
     _keysort = None
+#: the file-order replay by hash table (``_keysort.last_in_file_order``, present when the system's
+#: libxxhash loaded) and the most records it takes (its table holds positions as 32-bit numbers)
+_HASHED = hasattr(_keysort, "last_in_file_order")
+_HASHED_MAX = 2**32 - 1
 
 _FILE = re.compile(r"^(\d+)(?:_([0-9A-Za-z-]+))?\.(delta|snapshot)$")
 _END = b"\xff\xff\xff\xff"
@@ -221,10 +225,18 @@ def resolve_versions(
     the 10M-key benchmark checkpoint, three alternating runs: a read in key order costs 0.70-0.76
     CPU us per row, in file order 0.59-0.73).
 
-    With :mod:`._keysort` built, the records of all files are one array and its
+    With :mod:`._keysort` built, the records of all files are one array. In key order its
     ``last_of_each`` sorts them byte-wise and keeps the last position of each run of equal keys
     (measured on the 915k records of four 10M-key benchmark partitions, three alternating runs:
-    0.32-0.37 CPU us per record by dictionary encoding, 0.23-0.26 by the sort); else
+    0.32-0.37 CPU us per record by dictionary encoding, 0.23-0.26 by the sort). In file order its
+    ``last_in_file_order`` looks each key up in a hash table instead (XXH3 of the system's
+    libxxhash), reading the records from the last, and gives the positions already increasing:
+    measured on the 1.37M records of six 10M-key benchmark partitions, three rounds in one
+    process, 64-67 -> 27-31 ns per record for the last writes, 85-87 -> 46-49 for the whole replay
+    with its two gathers (the sort's positions were sorted back into file order); a 10M convert
+    heap map -> heap map, four alternating pairs of whole commands, 9.13 -> 7.92 CPU s (medians;
+    ``benchmarks/results/2026-12-04-ab-hashed-replay.md``). Without
+    libxxhash the sort serves both orders; without the extension,
     :func:`_resolve_versions_dictionary`, the reference.
     """
     return replay(combine_files(list(files)), key_order)
@@ -235,6 +247,13 @@ def _resolve_versions_dictionary(
 ) -> tuple[pa.Array, pa.Array]:
     """:func:`resolve_versions` without the compiled sort, and its reference."""
     return _replay(combine_files(list(files)), _last_writes_dictionary, key_order)
+
+
+def _resolve_versions_sorted(
+    files: list[tuple[pa.Array, pa.Array, np.ndarray]], key_order: bool = False
+) -> tuple[pa.Array, pa.Array]:
+    """:func:`resolve_versions` by the compiled sort in both orders (as without libxxhash)."""
+    return _replay(combine_files(list(files)), _last_writes_sorted, key_order)
 
 
 def combine_files(files: list[tuple[pa.Array, pa.Array, np.ndarray]]) -> list:
@@ -267,12 +286,19 @@ def _join(arrays: list[pa.Array], binary: pa.DataType) -> pa.Array:
 def replay(combined: list, key_order: bool = False) -> tuple[pa.Array, pa.Array]:
     """:func:`resolve_versions` over records already combined by :func:`combine_files` (the list
     is emptied)."""
-    return _replay(combined, _last_writes_dictionary if _keysort is None else _last_writes_sorted, key_order)
+    if _keysort is None:
+        return _replay(combined, _last_writes_dictionary, key_order)
+    if not key_order and _HASHED and len(combined[0]) < _HASHED_MAX:
+        return _replay(combined, _last_writes_hashed, key_order, in_file_order=True)
+    return _replay(combined, _last_writes_sorted, key_order)
 
 
-def _replay(combined: list, last_writes: Callable[[pa.Array], np.ndarray], key_order: bool) -> tuple[pa.Array, pa.Array]:
+def _replay(
+    combined: list, last_writes: Callable[[pa.Array], np.ndarray], key_order: bool, in_file_order: bool = False
+) -> tuple[pa.Array, pa.Array]:
     """The replay with ``last_writes`` (the position of each distinct key's last record, in
-    byte-wise order of the keys) over the combined records of all files. ``combined`` is emptied:
+    byte-wise order of the keys; with ``in_file_order``, in increasing order of position: then
+    ``key_order`` must be false) over the combined records of all files. ``combined`` is emptied:
     the joined keys go once the survivors' keys are copied, before the values are."""
     keys, values, removed = combined
     combined.clear()
@@ -281,7 +307,7 @@ def _replay(combined: list, last_writes: Callable[[pa.Array], np.ndarray], key_o
     survivors = last_writes(keys)
     survivors = survivors[~removed[survivors]]
     del removed
-    if not key_order:
+    if not key_order and not in_file_order:
         survivors = np.sort(survivors)
     if len(survivors) == len(keys) and (len(keys) < 2 or bool((np.diff(survivors) > 0).all())):
         return keys, values  # every record survives, and the files hold them in the order asked for
@@ -301,6 +327,12 @@ def take(arr: pa.Array, positions: np.ndarray) -> pa.Array:
     positions = np.ascontiguousarray(positions, dtype=np.int64)
     offsets, data = _framing.take_binary(*binary_args(arr), len(arr), positions)
     return pa.Array.from_buffers(arr.type, len(positions), [None, pa.py_buffer(offsets), pa.py_buffer(data)])
+
+
+def _last_writes_hashed(keys: pa.Array) -> np.ndarray:
+    """By the compiled hash table: ``_keysort.last_in_file_order`` (positions increasing)."""
+    offsets, data, offset, large = binary_args(keys)
+    return np.frombuffer(_keysort.last_in_file_order(offsets, data, offset, len(keys), large), dtype=np.int64)
 
 
 def _last_writes_sorted(keys: pa.Array) -> np.ndarray:

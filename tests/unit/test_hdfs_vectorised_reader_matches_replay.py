@@ -25,6 +25,7 @@ from migrate.providers.base import ReadContext, StoreDir
 from migrate.providers.hdfs import (
     HDFSProvider,
     _resolve_versions_dictionary,
+    _resolve_versions_sorted,
     parse_records,
     record_arrays,
     record_starts,
@@ -147,7 +148,11 @@ def as_arrays(records: list[tuple[bytes, bytes | None]], large: bool):
 record = st.tuples(st.binary(max_size=3), st.one_of(st.none(), st.binary(max_size=4)))
 
 
-REPLAYS = {"compiled sort": resolve_versions, "dictionary encoding": _resolve_versions_dictionary}
+REPLAYS = {
+    "compiled: hash table in file order, sort in key order": resolve_versions,
+    "compiled sort in both orders": _resolve_versions_sorted,
+    "dictionary encoding": _resolve_versions_dictionary,
+}
 
 
 def test_the_compiled_replay_is_the_one_used():
