@@ -1,7 +1,7 @@
 """The workers' fork server skips its interpreter's teardown when it stops.
 
-Imported first of :data:`migrate.workers.PRELOAD`, in the fork server only, this registers an
-exit handler that flushes the standard streams and ends the process at once (``os._exit``). The
+Imported first of every preload list of the fork server (``migrate.workers.preload``), in the
+fork server only, this registers an exit handler that flushes the standard streams and ends the process at once (``os._exit``). The
 server only forks workers: it holds no file, database or buffer of ours, and its workers end with
 ``os._exit`` themselves (``multiprocessing.forkserver``), so they never run it. Its teardown of
 pyarrow, numpy and rocksdict took 0.13-0.17 s of wall clock, and the command waits for the server

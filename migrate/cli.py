@@ -165,11 +165,13 @@ def main(argv: list[str] | None = None) -> int:
     argv = sys.argv[1:] if argv is None else list(argv)
     prefer_arrow_pool()  # before the fork server starts and before pyarrow is imported
     no_blas_pool()  # likewise, before numpy is imported
+    workers.for_command(argv[0] if argv else None)  # what its fork server imports
     if workers.likely_parallel(argv):  # before the imports of the parser, which take as long
         workers.start()
     try:
         return _main(argv)
     finally:
+        workers.for_command(None)
         # a server started early, on any way out (an error before the pool, a usage error), and
         # the one the last pool left stopping in a thread (workers.stop_soon)
         try:

@@ -33,6 +33,18 @@ PRELOAD = [
     "migrate.providers.hdfs", "migrate.providers.rocksdb", "numpy.ma",
     "pyarrow.compute", "pyarrow.parquet", "rocksdict", "pandas",
 ]
+#: A command's own preload list where it needs less than :data:`PRELOAD`: a convert's workers
+#: never read or write Parquet, so its server skips ``pyarrow.parquet`` and the export and import
+#: commands (which import it). Measured on 64-partition converts of 1M keys, three series of
+#: alternating pairs: the server's imports 0.26 -> 0.22 s, the command 1.89 / 1.94 / 2.09 ->
+#: 1.83 / 1.89 / 2.07 CPU s and 1.13 / 1.15 / 1.25 -> 1.09 / 1.12 / 1.20 s (medians;
+#: ``benchmarks/results/2026-12-04-ab-convert-preload.md``). Export and import need it all.
+COMMAND_PRELOAD = {
+    "convert": [
+        "migrate._server_exit", "migrate.commands.convert", "migrate.providers.hdfs", "migrate.providers.rocksdb",
+        "numpy.ma", "pyarrow.compute", "rocksdict", "pandas",
+    ],
+}
 
 #: the commands whose store partitions run in workers
 PARALLEL_COMMANDS = ("convert", "export", "import")
@@ -44,17 +56,31 @@ MIN_BYTES = 16 << 20
 
 #: the thread :func:`stop_soon` left waiting for a stopping server, until :func:`stop` joins it
 _stopping: _Stopping | None = None
+#: the command whose workers the next fork server serves (:func:`for_command`)
+_command: str | None = None
+
+
+def for_command(name: str | None) -> None:
+    """Name the command whose workers the next fork server serves (None: any command), so it
+    imports that command's preload list (:data:`COMMAND_PRELOAD`, else :data:`PRELOAD`)."""
+    global _command
+    _command = name
+
+
+def preload() -> list[str]:
+    """What the next fork server imports (see :func:`for_command`)."""
+    return COMMAND_PRELOAD.get(_command or "", PRELOAD)
 
 
 def context() -> Any:
-    """The process start method for workers: the fork server with :data:`PRELOAD`, else spawn
+    """The process start method for workers: the fork server with :func:`preload`, else spawn
     where fork servers do not exist. A server :func:`stop_soon` is stopping has stopped once this
     returns, so a pool made with this context starts a new one rather than sending work to it."""
     _join_stopping()
     if "forkserver" not in get_all_start_methods():
         return get_context("spawn")
     ctx = get_context("forkserver")
-    ctx.set_forkserver_preload(PRELOAD)
+    ctx.set_forkserver_preload(preload())
     return ctx
 
 

@@ -79,7 +79,7 @@ def test_the_server_skips_its_teardown_but_not_the_exit_handlers_after_it(tmp_pa
     assert run_server(tmp_path / "with", "migrate._server_exit,probe_mod") == ["exit-handler-ran"]
     # placed after the probe, it would end the server before the probe's handler: hence first in PRELOAD
     assert run_server(tmp_path / "after", "probe_mod,migrate._server_exit") == []
-    assert workers.PRELOAD[0] == "migrate._server_exit"
+    assert all(names[0] == "migrate._server_exit" for names in [workers.PRELOAD, *workers.COMMAND_PRELOAD.values()])
 
 
 def test_imported_anywhere_else_it_registers_nothing() -> None:

@@ -207,9 +207,53 @@ def test_workers_start_with_the_heavy_modules_imported():
 
     wanted = ["migrate.commands.convert", "migrate.providers.hdfs", "migrate.providers.rocksdb", "numpy.ma",
               "pyarrow.compute", "pyarrow.parquet", "rocksdict"]
-    assert set(wanted) <= set(workers.PRELOAD)
+    assert set(wanted) <= set(workers.PRELOAD) and workers.preload() == workers.PRELOAD
     with ProcessPoolExecutor(1, mp_context=workers.context()) as pool:
         assert pool.submit(imported_before, wanted).result(timeout=120) == wanted
+
+
+CONVERT_PROBE = """
+import os, sys
+
+def run_partition_and_report(task):
+    from migrate.commands.common import run_partition
+
+    result = run_partition(task)
+    heavy = ("pyarrow.parquet", "migrate.commands.export", "migrate.commands.import_archive")
+    name = f"{os.getpid()}-{task.source.operator_id}-{task.source.store_name}-{task.source.partition}"
+    with open(os.path.join(os.environ["STATESHIFT_TEST_PROBE_OUT"], name), "w") as f:
+        f.write(" ".join(n for n in heavy if n in sys.modules))
+    return result
+"""
+
+
+def test_a_converts_workers_never_import_parquet(tmp_path: Path, monkeypatch: pytest.MonkeyPatch):
+    """A convert's fork server skips pyarrow.parquet and the export and import commands
+    (workers.COMMAND_PRELOAD): no partition of a convert, in either direction, imports them in
+    its worker (a probe module in place of the convert's partition function reports, from each
+    worker, what it holds after the partition)."""
+    from migrate.cli import main
+    from migrate.commands import convert
+
+    assert "pyarrow.parquet" not in workers.COMMAND_PRELOAD["convert"]
+    monkeypatch.setattr(common, "PARALLEL_MIN_TASKS", 1)
+    probe_dir, out = tmp_path / "probe", tmp_path / "out"
+    probe_dir.mkdir()
+    out.mkdir()
+    (probe_dir / "convert_probe.py").write_text(CONVERT_PROBE)
+    monkeypatch.syspath_prepend(str(probe_dir))
+    monkeypatch.setenv("STATESHIFT_TEST_PROBE_OUT", str(out))
+    import convert_probe
+
+    monkeypatch.setattr(convert, "run_partition", convert_probe.run_partition_and_report)
+    src = tmp_path / "src"
+    shutil.copytree(DEMO / "greenhouse_totals_hdfs", src)
+    assert main(["convert", str(src), str(tmp_path / "rocks"), "--to", "rocksdb", "--jobs", "2"]) == 0
+    assert main(["convert", str(tmp_path / "rocks"), str(tmp_path / "back"), "--to", "hdfs", "--jobs", "2"]) == 0
+    reports = sorted(out.iterdir())
+    assert len(reports) == 4  # two partitions, each direction
+    assert all(int(r.name.split("-")[0]) != os.getpid() for r in reports)  # run in workers
+    assert [r.read_text() for r in reports] == [""] * 4
 
 
 def test_the_command_line_reports_a_server_that_did_not_stop_in_one_line(tmp_path: Path, monkeypatch, capsys):
