@@ -1,0 +1,101 @@
+"""What RocksDB's own steps cost for a case's rows, in the same run as the case: the least a
+case that reads or writes RocksDB can cost through the binding the tool must use (rocksdict, which
+bundles the engine's RocksDB version), next to the floor, which decodes nothing.
+
+    python -m benchmarks.rocksdb_steps PLAN.json
+
+For each store partition of a RocksDB checkpoint (the table files a case wrote or read), with the
+version's files restored into a scratch DB folder first (not timed: the zip's members unpacked,
+table files linked, by the tool's own ``RocksDBProvider._restore``):
+
+* ``scan``: open the DB read-only and read every row, through the tool's compiled batch loop
+  (``rocksdb_db.iterate``: rocksdict's ``items()`` view into Arrow arrays), as every case that
+  reads RocksDB must (a convert to RocksDB and an import read their target back as proof);
+* ``write`` (targets only): put the scanned rows, already in key order, into a new table file
+  through the tool's compiled put loop and ingest it into a fresh DB with its checkpoint taken
+  (``rocksdb_db._write_run``, ``rocksdb_db.build_db``), with the engine's table options.
+
+The times are the CPU seconds of those calls alone (``time.process_time``), summed over the
+partitions, which run over the same number of worker processes as the tool's. A case that does
+these steps can take no less wall clock than their CPU seconds over its jobs, whatever else it
+does; that over the floor's wall clock is printed as the least ratio to the floor the case can
+reach. Not part of the tool.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import sys
+import tempfile
+import time
+from concurrent.futures import ProcessPoolExecutor
+from multiprocessing import get_context
+
+
+def partition_steps(task: tuple[str, int, bool, str]) -> tuple[float, float, int]:
+    """(scan CPU s, write CPU s, rows) of one store partition (``task``: checkpoint root, index in
+    its store partitions, whether to write too, scratch folder)."""
+    from migrate.checkpoint.model import load_checkpoint
+    from migrate.providers.base import ReadContext
+    from migrate.providers.rocksdb import RocksDBProvider
+    from migrate.providers.rocksdb_db import _write_run, build_db, db_options, iterate
+    from migrate.storage import open_location
+
+    root, index, write, scratch = task
+    ck = load_checkpoint(open_location(root))
+    sp = ck.store_partitions()[index]
+    provider = RocksDBProvider()
+    ctx = ReadContext(conf=ck.conf, listing=sp.listing)
+    zip_name, changelogs = provider.plan(sp.dir, ck.state_version, sp.listing, ctx)
+    if zip_name is None or changelogs:
+        raise SystemExit(f"{sp.dir.describe()}: only a version zip without changelogs is measured")
+    folder = tempfile.mkdtemp(prefix=f"steps-{index}-", dir=scratch)
+    try:
+        db_dir = os.path.join(folder, "db")
+        os.mkdir(db_dir)
+        provider._restore(sp.dir, zip_name, provider._metadata(sp.dir, zip_name, sp.listing), db_dir, link=True)
+        where = sp.dir.describe(zip_name)
+        t = time.process_time()
+        batches = list(iterate(db_dir, where))
+        scan = time.process_time() - t
+        rows = sum(len(k) for k, _ in batches)
+        written = 0.0
+        if write and rows:
+            options = db_options(ck.conf, where)
+            out = os.path.join(folder, "out")
+            os.mkdir(out)
+            t = time.process_time()
+            run = _write_run([k for k, _ in batches], [v for _, v in batches], options, os.path.join(out, "run.sst"), where, (b"", b""))
+            build_db([run], rows, options, out, where)
+            written = time.process_time() - t
+        return scan, written, rows
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+
+
+def main(argv: list[str] | None = None) -> int:
+    argv = sys.argv[1:] if argv is None else argv
+    if len(argv) != 1:
+        print("usage: python -m benchmarks.rocksdb_steps PLAN.json  ({'root', 'partitions', 'write', 'jobs', 'scratch'})",
+              file=sys.stderr)
+        return 2
+    with open(argv[0]) as f:
+        plan = json.load(f)
+    tasks = [(plan["root"], i, bool(plan["write"]), plan["scratch"]) for i in range(plan["partitions"])]
+    if plan["jobs"] <= 1:
+        results = [partition_steps(t) for t in tasks]
+    else:
+        with ProcessPoolExecutor(max_workers=plan["jobs"], mp_context=get_context("spawn")) as pool:
+            results = list(pool.map(partition_steps, tasks))
+    print(json.dumps({
+        "scan_cpu_s": round(sum(r[0] for r in results), 3),
+        "write_cpu_s": round(sum(r[1] for r in results), 3),
+        "rows": sum(r[2] for r in results),
+    }))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
