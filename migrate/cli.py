@@ -202,7 +202,7 @@ def _mallopt_thresholds() -> None:
     try:
         if not os.confstr("CS_GNU_LIBC_VERSION"):
             return
-    except (ValueError, OSError):
+    except (AttributeError, ValueError, OSError):  # no confstr, or no such name here
         return
     import ctypes
 
