@@ -83,6 +83,14 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     with open(argv[0]) as f:
         plan = json.load(f)
+    # the environment the tool's command line gives its own processes (the workers below are
+    # spawned, so they start with it): Arrow's pool, one OpenBLAS thread, glibc's fixed malloc
+    # thresholds; without them the steps would pay costs the tool does not
+    from migrate import cli
+
+    cli.prefer_arrow_pool()
+    cli.no_blas_pool()
+    cli.keep_freed_memory()
     tasks = [(plan["root"], i, bool(plan["write"]), plan["scratch"]) for i in range(plan["partitions"])]
     if plan["jobs"] <= 1:
         results = [partition_steps(t) for t in tasks]
