@@ -6,7 +6,9 @@ bundles the engine's RocksDB version), next to the floor, which decodes nothing.
 
 For each store partition of a RocksDB checkpoint (the table files a case wrote or read), with the
 version's files restored into a scratch DB folder first (not timed: the zip's members unpacked,
-table files linked, by the tool's own ``RocksDBProvider._restore``):
+table files linked, by the tool's own ``RocksDBProvider._restore``), in the place the tool's own
+scratch would be (``migrate.scratch``: a tmpfs when there is room, where RocksDB's syncs cost
+nothing):
 
 * ``scan``: open the DB read-only and read every row, through the tool's compiled batch loop
   (``rocksdb_db.iterate``: rocksdict's ``items()`` view into Arrow arrays), as every case that
@@ -28,22 +30,26 @@ import json
 import os
 import shutil
 import sys
-import tempfile
 import time
 from concurrent.futures import ProcessPoolExecutor
 from multiprocessing import get_context
 
 
-def partition_steps(task: tuple[str, int, bool, str]) -> tuple[float, float, int]:
+#: the scratch folders of the steps (``migrate.scratch.make`` adds the process id)
+SCRATCH_PREFIX = "stateshift-rocksdb-steps-"
+
+
+def partition_steps(task: tuple[str, int, bool]) -> tuple[float, float, int]:
     """(scan CPU s, write CPU s, rows) of one store partition (``task``: checkpoint root, index in
-    its store partitions, whether to write too, scratch folder)."""
+    its store partitions, whether to write too)."""
     from migrate.checkpoint.model import load_checkpoint
     from migrate.providers.base import ReadContext
     from migrate.providers.rocksdb import RocksDBProvider
     from migrate.providers.rocksdb_db import _write_run, build_db, db_options, iterate
+    from migrate import scratch as scratch_dir
     from migrate.storage import open_location
 
-    root, index, write, scratch = task
+    root, index, write = task
     ck = load_checkpoint(open_location(root))
     sp = ck.store_partitions()[index]
     provider = RocksDBProvider()
@@ -51,7 +57,9 @@ def partition_steps(task: tuple[str, int, bool, str]) -> tuple[float, float, int
     zip_name, changelogs = provider.plan(sp.dir, ck.state_version, sp.listing, ctx)
     if zip_name is None or changelogs:
         raise SystemExit(f"{sp.dir.describe()}: only a version zip without changelogs is measured")
-    folder = tempfile.mkdtemp(prefix=f"steps-{index}-", dir=scratch)
+    # where the tool would build this partition (``migrate.scratch``: a tmpfs when there is room,
+    # as the tool's RocksDB reads and builds do), so the steps pay no disk syncs the tool does not
+    folder = scratch_dir.make(SCRATCH_PREFIX, 3 * sum(e.size for e in sp.listing.values()))
     try:
         db_dir = os.path.join(folder, "db")
         os.mkdir(db_dir)
@@ -78,7 +86,7 @@ def partition_steps(task: tuple[str, int, bool, str]) -> tuple[float, float, int
 def main(argv: list[str] | None = None) -> int:
     argv = sys.argv[1:] if argv is None else argv
     if len(argv) != 1:
-        print("usage: python -m benchmarks.rocksdb_steps PLAN.json  ({'root', 'partitions', 'write', 'jobs', 'scratch'})",
+        print("usage: python -m benchmarks.rocksdb_steps PLAN.json  ({'root', 'partitions', 'write', 'jobs'})",
               file=sys.stderr)
         return 2
     with open(argv[0]) as f:
@@ -91,7 +99,7 @@ def main(argv: list[str] | None = None) -> int:
     cli.prefer_arrow_pool()
     cli.no_blas_pool()
     cli.keep_freed_memory()
-    tasks = [(plan["root"], i, bool(plan["write"]), plan["scratch"]) for i in range(plan["partitions"])]
+    tasks = [(plan["root"], i, bool(plan["write"])) for i in range(plan["partitions"])]
     if plan["jobs"] <= 1:
         results = [partition_steps(t) for t in tasks]
     else:

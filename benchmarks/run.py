@@ -193,7 +193,7 @@ def run_floor(sources: dict[int, list[tuple[str, int]]], written: dict[int, list
 
 def run_rocksdb_steps(root: Path, partitions: int, write: bool, jobs: int, scratch: Path) -> dict[str, float]:
     plan = scratch / "steps-plan.json"
-    plan.write_text(json.dumps({"root": str(root), "partitions": partitions, "write": write, "jobs": jobs, "scratch": str(scratch)}))
+    plan.write_text(json.dumps({"root": str(root), "partitions": partitions, "write": write, "jobs": jobs}))
     m = measure.run(_python() + ["-m", "benchmarks.rocksdb_steps", str(plan)], env=_env())
     if m.returncode != 0:
         raise SystemExit(f"RocksDB steps failed:\n{m.stderr[-3000:]}")

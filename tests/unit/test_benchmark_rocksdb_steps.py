@@ -30,11 +30,13 @@ def test_the_steps_scan_and_write_every_row(tmp_path, monkeypatch):
     monkeypatch.setattr(rocksdb_db, "build_db", build_and_read)
     scratch = tmp_path / "scratch"
     scratch.mkdir()
-    results = [rocksdb_steps.partition_steps((str(tmp_path / "ckpt"), i, True, str(scratch))) for i in range(3)]
+    monkeypatch.setenv("STATESHIFT_SCRATCH", str(scratch))  # the tool's scratch choice, here in sight
+    results = [rocksdb_steps.partition_steps((str(tmp_path / "ckpt"), i, True)) for i in range(3)]
     assert sum(rows for _, _, rows in results) == 3000
     assert all(scan > 0 and write > 0 for scan, write, _ in results)
     assert [len(keys) for keys in built] == [rows for _, _, rows in results]
     assert all(keys == sorted(set(keys)) for keys in built)  # in RocksDB's order, each key once
+    assert built and all(keys for keys in built)
     assert list(scratch.iterdir()) == []  # every partition's scratch folder removed
 
 
@@ -42,7 +44,7 @@ def test_the_command_sums_the_partitions(tmp_path):
     p = Params(keys=2000, partitions=2, shape="wide", layout="rocksdb", deltas=1, seed=3)
     generate(p, tmp_path / "ckpt", jobs=1, quiet=True)
     plan = tmp_path / "plan.json"
-    plan.write_text(json.dumps({"root": str(tmp_path / "ckpt"), "partitions": 2, "write": False, "jobs": 2, "scratch": str(tmp_path)}))
+    plan.write_text(json.dumps({"root": str(tmp_path / "ckpt"), "partitions": 2, "write": False, "jobs": 2}))
     out = subprocess.run([sys.executable, "-m", "benchmarks.rocksdb_steps", str(plan)], capture_output=True, text=True, cwd=REPO, timeout=300)
     assert out.returncode == 0, out.stderr
     got = json.loads(out.stdout)
