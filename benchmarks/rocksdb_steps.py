@@ -42,11 +42,11 @@ SCRATCH_PREFIX = "stateshift-rocksdb-steps-"
 def partition_steps(task: tuple[str, int, bool]) -> tuple[float, float, int]:
     """(scan CPU s, write CPU s, rows) of one store partition (``task``: checkpoint root, index in
     its store partitions, whether to write too)."""
+    from migrate import scratch as scratch_dir
     from migrate.checkpoint.model import load_checkpoint
     from migrate.providers.base import ReadContext
     from migrate.providers.rocksdb import RocksDBProvider
     from migrate.providers.rocksdb_db import _write_run, build_db, db_options, iterate
-    from migrate import scratch as scratch_dir
     from migrate.storage import open_location
 
     root, index, write = task
@@ -58,7 +58,8 @@ def partition_steps(task: tuple[str, int, bool]) -> tuple[float, float, int]:
     if zip_name is None or changelogs:
         raise SystemExit(f"{sp.dir.describe()}: only a version zip without changelogs is measured")
     # where the tool would build this partition (``migrate.scratch``: a tmpfs when there is room,
-    # as the tool's RocksDB reads and builds do), so the steps pay no disk syncs the tool does not
+    # as the tool's RocksDB reads and builds do), so the steps pay no disk syncs the tool does not;
+    # the size asked for is a rough bound (the partition's listed files, three times)
     folder = scratch_dir.make(SCRATCH_PREFIX, 3 * sum(e.size for e in sp.listing.values()))
     try:
         db_dir = os.path.join(folder, "db")
