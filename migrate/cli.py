@@ -215,10 +215,12 @@ def main(argv: list[str] | None = None) -> int:
     argv = sys.argv[1:] if argv is None else list(argv)
     prefer_arrow_pool()  # before the fork server starts and before pyarrow is imported
     no_blas_pool()  # likewise, before numpy is imported
-    keep_freed_memory()  # before the fork server starts
+    fixed_malloc = keep_freed_memory(this_process=False)  # before the fork server starts
     workers.for_command(argv[0] if argv else None)  # what its fork server imports
     if workers.likely_parallel(argv):  # before the imports of the parser, which take as long
         workers.start()
+    if fixed_malloc:
+        _mallopt_thresholds()  # this process's own (ctypes), once the server is on its way
     try:
         return _main(argv)
     finally:

@@ -8,7 +8,18 @@ import importlib
 import os
 from types import ModuleType
 
+import numpy as np
 import pytest
+
+#: (offsets, data, offset, count, message) of an array that open_binary (_binary.h) refuses, for
+#: every helper taking one (offsets, data, offset, count, large) array
+REFUSED_ARRAYS = [
+    (np.array([0, 4, 2], np.int32), b"abcd", 0, 2, "not those of a binary array"),  # decreasing
+    (np.array([-1, 2], np.int32), b"abcd", 0, 1, "not those of a binary array"),  # negative
+    (np.array([0, 2, 9], np.int32), b"abcd", 0, 2, "not those of a binary array"),  # past the end
+    (np.array([0, 2], np.int32), b"abcd", 0, 2, "shorter"),  # too few offsets
+    (np.array([0, 2], np.int32), b"abcd", -1, 1, "negative"),
+]
 
 
 def load(name: str, what: str) -> ModuleType:
