@@ -14,11 +14,12 @@ the tool's bytecode is compiled first, as an installed package has it):
 Per case: keys/s and MB/s of source state files (wall clock), CPU seconds, peak RSS (largest
 single process, and the whole process tree), and the same-run **floor** (``floor.py``: read and
 decompress the same source files, write as many bytes into as many files, no decoding) with the
-ratio tool/floor; for the cases that touch RocksDB, the CPU seconds of RocksDB's own steps for the
-same rows (``rocksdb_steps.py``: the scan every such case makes, and for a RocksDB target the
-write) and the least tool/floor wall ratio they leave possible. With ``--engine``, the engine's
-own load of the heap-map state
-(``engine_load.py``) and the ratio convert/engine. Missing checkpoints are generated first
+ratio tool/floor; the CPU seconds of the libraries' own steps for the same rows: RocksDB's
+(``rocksdb_steps.py``: the scan every case that touches RocksDB makes, and for a RocksDB target the
+write) and the file codecs' (``codec_steps.py``: a heap-map target's LZ4 compression and its
+read-back, an archive's Parquet encoding), and the least tool/floor wall ratio they leave
+possible. With ``--engine``, the engine's own load of the heap-map state (``engine_load.py``) and
+the ratio convert/engine. Missing checkpoints are generated first
 (``generate.py``; kept in ``benchmarks/data/``, out of git). Results go to
 ``benchmarks/results/<date>.md`` (appended) with a table ready for the README.
 """
@@ -63,14 +64,31 @@ class CaseResult:
     note: str = ""
     #: RocksDB's own steps for the case's rows (``rocksdb_steps.py``): CPU s of the scan and the write
     steps: dict[str, float] | None = None
+    #: the file codec's own steps for the case's target (``codec_steps.py``): CPU s of the write and read
+    codec_steps: dict[str, Any] | None = None
+
+    def step_parts(self) -> list[tuple[str, float]]:
+        """(name, CPU s) of each library step measured for the case."""
+        parts = []
+        if self.steps:
+            parts.append(("RocksDB scan", self.steps["scan_cpu_s"]))
+            if self.steps["write_cpu_s"]:
+                parts.append(("RocksDB write", self.steps["write_cpu_s"]))
+        if self.codec_steps:
+            name = {"lz4": "LZ4", "parquet": "Parquet"}[self.codec_steps["kind"]]
+            parts.append((f"{name} write", self.codec_steps["write_cpu_s"]))
+            if self.codec_steps["read_cpu_s"]:
+                parts.append((f"{name} read-back", self.codec_steps["read_cpu_s"]))
+        return parts
 
     @property
     def steps_cpu_s(self) -> float | None:
-        return self.steps["scan_cpu_s"] + self.steps["write_cpu_s"] if self.steps else None
+        parts = self.step_parts()
+        return sum(s for _, s in parts) if parts else None
 
     @property
     def least_ratio(self) -> float | None:
-        """The least tool/floor wall ratio a case doing RocksDB's steps can reach: their CPU
+        """The least tool/floor wall ratio a case doing the libraries' steps can reach: their CPU
         seconds spread over the jobs, over the floor's wall clock."""
         if self.steps_cpu_s is None or not self.floor:
             return None
@@ -200,6 +218,15 @@ def run_rocksdb_steps(root: Path, partitions: int, write: bool, jobs: int, scrat
     return json.loads(m.stdout.strip().splitlines()[-1])
 
 
+def run_codec_steps(kind: str, root: Path, jobs: int, scratch: Path) -> dict[str, Any]:
+    plan = scratch / "codec-plan.json"
+    plan.write_text(json.dumps({"kind": kind, "root": str(root), "jobs": jobs}))
+    m = measure.run(_python() + ["-m", "benchmarks.codec_steps", str(plan)], env=_env())
+    if m.returncode != 0:
+        raise SystemExit(f"{kind} steps failed:\n{m.stderr[-3000:]}")
+    return json.loads(m.stdout.strip().splitlines()[-1])
+
+
 def _tool(args: list[str], jobs: int, tool_path: str | None, tool_python: str | None = None) -> measure.Measured:
     # the child's working directory comes first on its path, so it must hold the package to run
     m = measure.run([tool_python or sys.executable, "-m", "migrate"] + args + ["--jobs", str(jobs), "--json"], env=_env(tool_path),
@@ -264,11 +291,20 @@ def run_case(
         root, write = (src, False) if case == "convert-r2h" else (target, True)
         steps = run_rocksdb_steps(root, p.partitions, write, jobs, steps_dir)
         shutil.rmtree(steps_dir, ignore_errors=True)
+    codec = None
+    if with_floor and case in ("convert-r2h", "export"):
+        # the file format's side of the case's target: a heap map's LZ4 stream, an archive's Parquet
+        steps_dir = scratch / f"codec-{case}"
+        shutil.rmtree(steps_dir, ignore_errors=True)
+        steps_dir.mkdir(parents=True)
+        codec = run_codec_steps("lz4" if case == "convert-r2h" else "parquet", target, jobs, steps_dir)
+        shutil.rmtree(steps_dir, ignore_errors=True)
     result = CaseResult(
         case=case, params=p, rows=rows,
         source_bytes=sum(s for files in sources.values() for _, s in files),
         target_bytes=sum(sum(v) for v in written.values()),
         tool=m, floor=floor, largest_partition_raw=int(info["largest_partition_raw_bytes"]), jobs=jobs, steps=steps,
+        codec_steps=codec,
     )
     archive = scratch / "archive-for-import"
     if case == "export" and not archive.exists():
@@ -297,14 +333,14 @@ def _fmt_rate(x: float) -> str:
 def table(results: list[CaseResult]) -> str:
     head = ("| case | keys | partitions | jobs | wall s | keys/s | source MB/s | CPU s | keys/CPU-s "
             "| peak RSS MB (one process / tree) | tree PSS MB | tmpfs scratch MB | tree PSS + tmpfs MB | RSS limit MB | floor s (CPU s) | tool/floor wall (CPU) "
-            "| engine s | tool/engine | RocksDB steps CPU s (scan + write) | least tool/floor wall |")
+            "| engine s | tool/engine | libraries' steps CPU s | least tool/floor wall |")
     lines = [head, "|" + "|".join(["---"] * (head.count("|") - 1)) + "|"]
     for r in results:
         floor = (f"{r.floor.wall_s:.1f} ({r.floor.cpu_s:.1f}) | {r.ratio:.1f}x ({r.cpu_ratio:.1f}x)"
                  if r.floor and r.cpu_ratio else "- | -")
         engine = f"{r.engine_s:.1f} | {r.tool.wall_s / r.engine_s:.2f}x" if r.engine_s else "- | -"
-        steps = (f"{r.steps_cpu_s:.1f} ({r.steps['scan_cpu_s']:.1f} + {r.steps['write_cpu_s']:.1f}) | {r.least_ratio:.1f}x"
-                 if r.steps and r.least_ratio is not None else "- | -")
+        steps = (f"{r.steps_cpu_s:.1f} ({' + '.join(f'{name} {s:.1f}' for name, s in r.step_parts())}) | {r.least_ratio:.1f}x"
+                 if r.least_ratio is not None else "- | -")
         lines.append(
             f"| {r.case} | {r.rows:,} | {r.params.partitions} | {r.jobs} | {r.tool.wall_s:.1f} | {_fmt_rate(r.keys_per_s)} "
             f"| {r.mb_per_s:.1f} | {r.tool.cpu_s:.1f} | {_fmt_rate(r.keys_per_cpu_s)} "
@@ -327,7 +363,7 @@ def targets(results: list[CaseResult]) -> list[str]:
             bound = r.least_ratio
             name = "within 3x of floor"
             if r.ratio > 3 and bound is not None and bound > 3:
-                name += f" (out of reach here: RocksDB's own steps alone take {bound:.1f}x the floor's wall clock)"
+                name += f" (out of reach here: the libraries' own steps alone take {bound:.1f}x the floor's wall clock)"
             checks.append((name, r.ratio <= 3))
         if r.engine_s:
             checks.append(("no slower than the engine", r.tool.wall_s <= r.engine_s))
@@ -396,6 +432,7 @@ def write_results(results: list[CaseResult], jobs: int, argv: list[str], name: s
                 "tool": {k: v for k, v in r.tool.__dict__.items() if k not in ("stdout", "stderr", "argv")},
                 "floor": {k: v for k, v in r.floor.__dict__.items() if k not in ("stdout", "stderr", "argv")} if r.floor else None,
                 "rocksdb_steps": r.steps,
+                "codec_steps": r.codec_steps,
             }) + "\n")
     return path
 

@@ -110,6 +110,15 @@ def _open_target(loc: Location, rel: str) -> tuple[IO[bytes], str | None]:
     return loc.fs.open(target, "wb"), None
 
 
+def parquet_writer(sink: IO[bytes] | pa.NativeFile, schema: pa.Schema) -> pq.ParquetWriter:
+    """The Parquet writer of an archive data file: Snappy pages, dictionaries for the columns
+    :func:`dictionary_columns` names, statistics for every column but the raw bytes."""
+    return pq.ParquetWriter(
+        sink, schema, compression=PARQUET_COMPRESSION, use_dictionary=dictionary_columns(schema),
+        write_statistics=[f.name for f in schema if f.name not in RAW_COLUMNS],
+    )
+
+
 def write_data_file(
     loc: Location, rel: str, batches: Iterable[pa.RecordBatch], decoder: RowDecoder, metadata: dict[str, str]
 ) -> WrittenData:
@@ -122,10 +131,7 @@ def write_data_file(
     handle, tmp = _open_target(loc, rel)
     sink = _HashingWriter(handle)
     try:
-        writer = pq.ParquetWriter(
-            sink, schema, compression=PARQUET_COMPRESSION, use_dictionary=dictionary_columns(schema),
-            write_statistics=[f.name for f in schema if f.name not in RAW_COLUMNS],
-        )
+        writer = parquet_writer(sink, schema)
         try:
             for batch in stream:
                 if batch.num_rows == 0:
