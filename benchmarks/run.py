@@ -11,8 +11,11 @@ the tool's bytecode is compiled first, as an installed package has it):
 * ``convert-h2r``: heap-map checkpoint -> RocksDB;   ``convert-r2h``: RocksDB -> heap map;
 * ``export``: heap-map checkpoint -> Parquet archive; ``import``: that archive -> RocksDB.
 
-Per case: keys/s and MB/s of source state files (wall clock), CPU seconds, peak RSS (largest
-single process, and the whole process tree), and the same-run **floor** (``floor.py``: read and
+Each case runs ``--repeat`` times (default 3), each tool run followed by its floor run, and the
+run of median wall clock of each counts (the floor, mostly creating, writing and syncing files,
+moves with the machine as much as the tool). Per case: keys/s and MB/s of source state files
+(wall clock), CPU seconds, peak RSS (largest single process, and the whole process tree), and the
+same-run **floor** (``floor.py``: read and
 decompress the same source files, write as many bytes into as many files, no decoding) with the
 ratio tool/floor; the CPU seconds of the libraries' own steps for the same rows: RocksDB's
 (``rocksdb_steps.py``: the scan every case that touches RocksDB makes, and for a RocksDB target the
@@ -66,6 +69,9 @@ class CaseResult:
     steps: dict[str, float] | None = None
     #: the file codec's own steps for the case's target (``codec_steps.py``): CPU s of the write and read
     codec_steps: dict[str, Any] | None = None
+    #: the wall clock of every run of the tool and of the floor, in run order (``--repeat``)
+    tool_walls: list[float] | None = None
+    floor_walls: list[float] | None = None
 
     def step_parts(self) -> list[tuple[str, float]]:
         """(name, CPU s) of each library step measured for the case."""
@@ -236,24 +242,31 @@ def _tool(args: list[str], jobs: int, tool_path: str | None, tool_python: str | 
     return m
 
 
+def median_run(runs: list[measure.Measured]) -> measure.Measured:
+    """The run of median wall clock (the lower of the two middle ones for an even count)."""
+    return sorted(runs, key=lambda m: m.wall_s)[(len(runs) - 1) // 2]
+
+
 def run_case(
-    case: str, p: Params, jobs: int, scratch: Path, with_floor: bool, tool_path: str | None = None, tool_python: str | None = None
+    case: str, p: Params, jobs: int, scratch: Path, with_floor: bool, tool_path: str | None = None,
+    tool_python: str | None = None, repeat: int = 1,
 ) -> CaseResult:
+    """Run a case ``repeat`` times, each tool run followed by its floor run, and keep the median
+    run of each (the floor moves with the machine as much as the tool does)."""
     hdfs = Params(p.keys, p.partitions, p.shape, "hdfs", p.deltas, p.seed)
     rocks = Params(p.keys, p.partitions, p.shape, "rocksdb", p.deltas, p.seed)
     target = scratch / case
-    shutil.rmtree(target, ignore_errors=True)
     if case == "convert-h2r":
         src, info = ensure_checkpoint(hdfs, jobs)
-        m = _tool(["convert", str(src), str(target), "--to", "rocksdb"], jobs, tool_path, tool_python)
+        args = ["convert", str(src), str(target), "--to", "rocksdb"]
         sources = source_files(src)
     elif case == "convert-r2h":
         src, info = ensure_checkpoint(rocks, jobs)
-        m = _tool(["convert", str(src), str(target), "--to", "hdfs"], jobs, tool_path, tool_python)
+        args = ["convert", str(src), str(target), "--to", "hdfs"]
         sources = source_files(src)
     elif case == "export":
         src, info = ensure_checkpoint(hdfs, jobs)
-        m = _tool(["export", str(src), str(target)], jobs, tool_path, tool_python)
+        args = ["export", str(src), str(target)]
         sources = source_files(src)
     elif case == "import":
         src, info = ensure_checkpoint(hdfs, jobs)
@@ -261,27 +274,34 @@ def run_case(
         if not (archive / "manifest.json").exists():
             shutil.rmtree(archive, ignore_errors=True)
             _tool(["export", str(src), str(archive)], jobs, tool_path, tool_python)
-        m = _tool(["import", str(archive), str(target), "--to", "rocksdb"], jobs, tool_path, tool_python)
+        args = ["import", str(archive), str(target), "--to", "rocksdb"]
         sources = archive_files(archive)
     else:
         raise SystemExit(f"unknown case {case}")
-    report = json.loads(m.stdout)
-    rows = int(report.get("rows", 0))
-    if rows != info["rows"]:
-        raise SystemExit(f"{case}: the tool reports {rows} rows, the generator wrote {info['rows']}")
     expected = {q["partition"]: q["digest"] for q in info["partitions"]}
-    got = {q["partition"]: q["source_digest"] for q in report.get("partitions", []) if "source_digest" in q}
-    wrong = sorted(k for k, d in got.items() if expected.get(k) != d)
-    if wrong:
-        raise SystemExit(f"{case}: partition {wrong[0]} digest {got[wrong[0]]} differs from the generator's {expected.get(wrong[0])}")
-    written = written_sizes(target)
-    floor = None
-    if with_floor:
-        floor_dir = scratch / f"floor-{case}"
-        shutil.rmtree(floor_dir, ignore_errors=True)
-        floor_dir.mkdir(parents=True)
-        floor = run_floor(sources, written, jobs, floor_dir)
-        shutil.rmtree(floor_dir, ignore_errors=True)
+    tool_runs: list[measure.Measured] = []
+    floor_runs: list[measure.Measured] = []
+    for _ in range(max(1, repeat)):
+        shutil.rmtree(target, ignore_errors=True)
+        m = _tool(args, jobs, tool_path, tool_python)
+        report = json.loads(m.stdout)
+        rows = int(report.get("rows", 0))
+        if rows != info["rows"]:
+            raise SystemExit(f"{case}: the tool reports {rows} rows, the generator wrote {info['rows']}")
+        got = {q["partition"]: q["source_digest"] for q in report.get("partitions", []) if "source_digest" in q}
+        wrong = sorted(k for k, d in got.items() if expected.get(k) != d)
+        if wrong:
+            raise SystemExit(f"{case}: partition {wrong[0]} digest {got[wrong[0]]} differs from the generator's {expected.get(wrong[0])}")
+        tool_runs.append(m)
+        written = written_sizes(target)
+        if with_floor:
+            floor_dir = scratch / f"floor-{case}"
+            shutil.rmtree(floor_dir, ignore_errors=True)
+            floor_dir.mkdir(parents=True)
+            floor_runs.append(run_floor(sources, written, jobs, floor_dir))
+            shutil.rmtree(floor_dir, ignore_errors=True)
+    m = median_run(tool_runs)
+    floor = median_run(floor_runs) if floor_runs else None
     steps = None
     if with_floor and case in ("convert-h2r", "convert-r2h", "import"):
         steps_dir = scratch / f"steps-{case}"
@@ -304,7 +324,7 @@ def run_case(
         source_bytes=sum(s for files in sources.values() for _, s in files),
         target_bytes=sum(sum(v) for v in written.values()),
         tool=m, floor=floor, largest_partition_raw=int(info["largest_partition_raw_bytes"]), jobs=jobs, steps=steps,
-        codec_steps=codec,
+        codec_steps=codec, tool_walls=[r.wall_s for r in tool_runs], floor_walls=[r.wall_s for r in floor_runs],
     )
     archive = scratch / "archive-for-import"
     if case == "export" and not archive.exists():
@@ -415,9 +435,11 @@ def write_results(results: list[CaseResult], jobs: int, argv: list[str], name: s
         "Targets (issue 6):",
         *targets(results),
         "",
-        "Details (source/target MB, floor CPU s):",
+        "Details (source/target MB, CPU s of the median runs):",
         *[f"- {r.case} p{r.params.partitions}: source {r.source_bytes / 1e6:.1f} MB, target {r.target_bytes / 1e6:.1f} MB, "
           f"tool CPU {r.tool.cpu_s:.1f} s" + (f", floor CPU {r.floor.cpu_s:.1f} s" if r.floor else "")
+          + (f"; wall s of each run, the median counts: tool {' / '.join(f'{w:.2f}' for w in r.tool_walls)}" if r.tool_walls and len(r.tool_walls) > 1 else "")
+          + (f", floor {' / '.join(f'{w:.2f}' for w in r.floor_walls)}" if r.floor_walls and len(r.floor_walls) > 1 else "")
           + (f"; {r.note}" if r.note else "") for r in results],
         "",
     ]
@@ -431,7 +453,7 @@ def write_results(results: list[CaseResult], jobs: int, argv: list[str], name: s
                 "largest_partition_raw": r.largest_partition_raw, "engine_s": r.engine_s, "note": r.note,
                 "tool": {k: v for k, v in r.tool.__dict__.items() if k not in ("stdout", "stderr", "argv")},
                 "floor": {k: v for k, v in r.floor.__dict__.items() if k not in ("stdout", "stderr", "argv")} if r.floor else None,
-                "rocksdb_steps": r.steps,
+                "rocksdb_steps": r.steps, "tool_walls": r.tool_walls, "floor_walls": r.floor_walls,
                 "codec_steps": r.codec_steps,
             }) + "\n")
     return path
@@ -448,6 +470,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--cases", default=",".join(CASES), help=f"comma list of: {', '.join(CASES)}")
     ap.add_argument("--jobs", type=int, default=os.cpu_count() or 1)
     ap.add_argument("--no-floor", action="store_true", help="skip the floor runs")
+    ap.add_argument("--repeat", type=int, default=3, metavar="N",
+                    help="run each case N times, each tool run followed by its floor run; the median run of each counts (default 3)")
     ap.add_argument("--engine", action="store_true", help="also time the engine's own load of the heap-map state")
     ap.add_argument("--scratch", type=Path, default=None, help="where targets are written (default: a temp dir)")
     ap.add_argument("--tool-path", default=None, metavar="DIR",
@@ -474,7 +498,7 @@ def main(argv: list[str] | None = None) -> int:
             p = Params(args.keys, parts, args.shape, "hdfs", args.deltas, args.seed)
             engine = run_engine(p, scratch) if args.engine else (None, "")
             for case in cases:
-                r = run_case(case, p, args.jobs, scratch, not args.no_floor, tool_path, args.tool_python)
+                r = run_case(case, p, args.jobs, scratch, not args.no_floor, tool_path, args.tool_python, args.repeat)
                 if case == "convert-h2r" and engine[0]:
                     r.engine_s = engine[0]
                 if case == "convert-h2r" and engine[1]:
