@@ -167,6 +167,23 @@ def _byte_lengths(arr: pa.Array) -> np.ndarray:
     return np.asarray(pc.binary_length(arr).fill_null(0), dtype=np.uint64)
 
 
+def total_bytes(arr: pa.Array) -> int:
+    """The sum of the elements' byte lengths (a null counts 0). For a binary array without nulls
+    that is its last offset less its first, read from the offsets buffer; else Arrow's
+    ``binary_length`` per element (a null's slot may hold bytes). Measured on a 156k-element
+    array: 208 -> 1.2 us per call; on the 10M-key convert RocksDB -> heap map the per-element
+    lengths were about 1 % of the CPU samples (py-spy)."""
+    if plain_binary(arr):
+        n = len(arr)
+        if n == 0:
+            return 0
+        offsets = np.frombuffer(arr.buffers()[1], dtype=np.int64 if pa.types.is_large_binary(arr.type) else np.int32)
+        first, last = int(offsets[arr.offset]), int(offsets[arr.offset + n])
+        if 0 <= first <= last:
+            return last - first
+    return int(_byte_lengths(arr).sum())
+
+
 def digest_batch(batch: pa.RecordBatch) -> Digest:
     """Digest of one batch of ``key``/``value`` binary columns: compiled when :mod:`._digest` is
     built and both columns are binary without nulls (measured on 625k rows of four 10M-key
@@ -224,6 +241,6 @@ class DigestingIterator:
     def __next__(self) -> pa.RecordBatch:
         batch = next(self._it)
         self.digest = self.digest + digest_batch(batch)
-        self.key_bytes += int(_byte_lengths(batch.column("key")).sum())
-        self.value_bytes += int(_byte_lengths(batch.column("value")).sum())
+        self.key_bytes += total_bytes(batch.column("key"))
+        self.value_bytes += total_bytes(batch.column("value"))
         return batch
