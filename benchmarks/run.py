@@ -281,7 +281,7 @@ def run_case(
     expected = {q["partition"]: q["digest"] for q in info["partitions"]}
     tool_runs: list[measure.Measured] = []
     floor_runs: list[measure.Measured] = []
-    for _ in range(max(1, repeat)):
+    for _ in range(repeat):
         shutil.rmtree(target, ignore_errors=True)
         m = _tool(args, jobs, tool_path, tool_python)
         report = json.loads(m.stdout)
@@ -484,6 +484,8 @@ def main(argv: list[str] | None = None) -> int:
     args = ap.parse_args(argv)
     tool_path = str(Path(args.tool_path).resolve()) if args.tool_path else None
     args.tool_python = os.path.abspath(args.tool_python) if args.tool_python else None  # a venv's python: no resolve()
+    if args.repeat < 1:
+        ap.error("--repeat must be at least 1")
     cases = [c.strip() for c in args.cases.split(",") if c.strip()]
     unknown = sorted(set(cases) - set(CASES))
     if unknown:

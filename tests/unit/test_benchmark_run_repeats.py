@@ -82,3 +82,9 @@ def test_a_wrong_digest_in_any_run_stops_the_case(staged, monkeypatch):
 
 def test_median_of_an_even_count_is_the_lower_middle():
     assert run.median_run([_m(4.0), _m(1.0), _m(3.0), _m(2.0)]).wall_s == 2.0
+
+
+def test_repeat_below_one_is_refused(capsys):
+    with pytest.raises(SystemExit):
+        run.main(["--repeat", "0", "--cases", "export"])
+    assert "--repeat must be at least 1" in capsys.readouterr().err
