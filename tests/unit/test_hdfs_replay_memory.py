@@ -68,3 +68,19 @@ def test_the_lists_are_emptied_and_the_replay_is_unchanged() -> None:
     keys, values = replay(combined, True)
     assert combined == []
     assert keys.to_pylist() == [b"a", b"b"] and values.to_pylist() == [b"2", b"3"]
+
+
+def test_one_file_is_not_copied_and_large_binary_keeps_its_type() -> None:
+    k = pa.array([b"b", b"a", b"c"] * 1000, pa.binary()).slice(1)  # sliced: offsets do not start at 0
+    v = pa.array([b"1", b"2", b"3"] * 1000, pa.binary()).slice(1)
+    files = [(k, v, np.zeros(len(k), bool))]
+    keys, values, removed = combine_files(files)
+    assert files == []
+    assert keys.buffers()[2].address == k.buffers()[2].address  # the same bytes, not a copy
+    assert values.buffers()[2].address == v.buffers()[2].address
+    assert keys.to_pylist() == k.to_pylist() and values.to_pylist() == v.to_pylist() and len(removed) == len(k)
+    big = pa.array([b"x", b"y"], pa.large_binary())
+    mixed = combine_files([(big, big, np.zeros(2, bool)), (pa.array([b"z"]), pa.array([b"z"]), np.zeros(1, bool))])
+    assert mixed[0].type == pa.large_binary() and mixed[0].to_pylist() == [b"x", b"y", b"z"]
+    keys, values = replay(combine_files([(big, big, np.zeros(2, bool))]), True)
+    assert keys.type == pa.large_binary() and keys.to_pylist() == [b"x", b"y"]
