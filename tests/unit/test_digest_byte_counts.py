@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import numpy as np
 import pyarrow as pa
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -49,3 +50,14 @@ def test_the_iterator_counts_keys_and_values_apart():
     batch = pa.RecordBatch.from_arrays([keys, values], names=["key", "value"])
     it = DigestingIterator([batch, batch.slice(1)])
     assert list(it) and it.key_bytes == 6 + 4 and it.value_bytes == 13 + 3
+
+
+def test_arrow_refuses_the_offsets_the_count_relies_on():
+    # total_bytes reads the first and last offsets as they are; Arrow refuses, when an array is
+    # built, offsets too few for its length or a first offset beyond the last
+    short = pa.py_buffer(np.array([0, 2], dtype=np.int32).tobytes())
+    with pytest.raises(pa.ArrowInvalid):
+        pa.Array.from_buffers(pa.binary(), 3, [None, short, pa.py_buffer(b"abcd")])
+    backwards = pa.py_buffer(np.array([5, 2], dtype=np.int32).tobytes())
+    with pytest.raises(pa.ArrowInvalid):
+        pa.Array.from_buffers(pa.binary(), 1, [None, backwards, pa.py_buffer(b"abcdefgh")])
