@@ -26,9 +26,9 @@ from __future__ import annotations
 import json
 import sys
 import time
-from concurrent.futures import ProcessPoolExecutor
-from multiprocessing import get_context
 from pathlib import Path
+
+from .rocksdb_steps import map_in_tool_env, read_plan
 
 KINDS = ("lz4", "parquet")
 
@@ -91,7 +91,7 @@ def parquet_steps(path: str) -> tuple[float, float, int]:
     if out.size != on_disk:
         raise SystemExit(f"{path}: encoded again to {out.size} bytes, the file has {on_disk}; "
                          "the step would not be the tool's work")
-    return write, 0.0, sum(t.num_rows for t in groups)
+    return write, 0.0, sum(g.num_rows for g in groups)
 
 
 def file_steps(task: tuple[str, str]) -> tuple[float, float, int]:
@@ -100,28 +100,14 @@ def file_steps(task: tuple[str, str]) -> tuple[float, float, int]:
 
 
 def main(argv: list[str] | None = None) -> int:
-    argv = sys.argv[1:] if argv is None else argv
-    if len(argv) != 1:
-        print("usage: python -m benchmarks.codec_steps PLAN.json  ({'kind': 'lz4' | 'parquet', 'root', 'jobs'})",
-              file=sys.stderr)
+    plan = read_plan(sys.argv[1:] if argv is None else argv,
+                     "usage: python -m benchmarks.codec_steps PLAN.json  ({'kind': 'lz4' | 'parquet', 'root', 'jobs'})")
+    if plan is None:
         return 2
-    with open(argv[0]) as f:
-        plan = json.load(f)
-    # the environment the tool's command line gives its own processes (see rocksdb_steps.main)
-    from migrate import cli
-
-    cli.prefer_arrow_pool()
-    cli.no_blas_pool()
-    cli.keep_freed_memory()
     paths = files_of(plan["kind"], plan["root"])
     if not paths:
         raise SystemExit(f"{plan['root']}: no {plan['kind']} files to measure")
-    tasks = [(plan["kind"], p) for p in paths]
-    if plan["jobs"] <= 1:
-        results = [file_steps(t) for t in tasks]
-    else:
-        with ProcessPoolExecutor(max_workers=plan["jobs"], mp_context=get_context("spawn")) as pool:
-            results = list(pool.map(file_steps, tasks))
+    results = map_in_tool_env(file_steps, [(plan["kind"], p) for p in paths], plan["jobs"])
     print(json.dumps({
         "kind": plan["kind"],
         "write_cpu_s": round(sum(r[0] for r in results), 6),

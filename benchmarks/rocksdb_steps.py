@@ -84,28 +84,38 @@ def partition_steps(task: tuple[str, int, bool]) -> tuple[float, float, int]:
         shutil.rmtree(folder, ignore_errors=True)
 
 
-def main(argv: list[str] | None = None) -> int:
-    argv = sys.argv[1:] if argv is None else argv
+def read_plan(argv: list[str], usage: str) -> dict | None:
+    """The JSON plan named by the one argument of a steps command (None, after the usage, without it)."""
     if len(argv) != 1:
-        print("usage: python -m benchmarks.rocksdb_steps PLAN.json  ({'root', 'partitions', 'write', 'jobs'})",
-              file=sys.stderr)
-        return 2
+        print(usage, file=sys.stderr)
+        return None
     with open(argv[0]) as f:
-        plan = json.load(f)
-    # the environment the tool's command line gives its own processes (the workers below are
-    # spawned, so they start with it): Arrow's pool, one OpenBLAS thread, glibc's fixed malloc
-    # thresholds; without them the steps would pay costs the tool does not
+        return json.load(f)
+
+
+def map_in_tool_env(fn, tasks: list, jobs: int) -> list:
+    """``fn`` over ``tasks`` in ``jobs`` spawned processes (in this one for a single job), in the
+    environment the tool's command line gives its own processes (spawned workers start with it):
+    Arrow's pool, one OpenBLAS thread, glibc's fixed malloc thresholds; without them the steps
+    would pay costs the tool does not."""
     from migrate import cli
 
     cli.prefer_arrow_pool()
     cli.no_blas_pool()
     cli.keep_freed_memory()
+    if jobs <= 1:
+        return [fn(t) for t in tasks]
+    with ProcessPoolExecutor(max_workers=jobs, mp_context=get_context("spawn")) as pool:
+        return list(pool.map(fn, tasks))
+
+
+def main(argv: list[str] | None = None) -> int:
+    plan = read_plan(sys.argv[1:] if argv is None else argv,
+                     "usage: python -m benchmarks.rocksdb_steps PLAN.json  ({'root', 'partitions', 'write', 'jobs'})")
+    if plan is None:
+        return 2
     tasks = [(plan["root"], i, bool(plan["write"])) for i in range(plan["partitions"])]
-    if plan["jobs"] <= 1:
-        results = [partition_steps(t) for t in tasks]
-    else:
-        with ProcessPoolExecutor(max_workers=plan["jobs"], mp_context=get_context("spawn")) as pool:
-            results = list(pool.map(partition_steps, tasks))
+    results = map_in_tool_env(partition_steps, tasks, plan["jobs"])
     print(json.dumps({
         "scan_cpu_s": round(sum(r[0] for r in results), 3),
         "write_cpu_s": round(sum(r[1] for r in results), 3),

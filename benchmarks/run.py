@@ -215,22 +215,22 @@ def run_floor(sources: dict[int, list[tuple[str, int]]], written: dict[int, list
     return m
 
 
-def run_rocksdb_steps(root: Path, partitions: int, write: bool, jobs: int, scratch: Path) -> dict[str, float]:
-    plan = scratch / "steps-plan.json"
-    plan.write_text(json.dumps({"root": str(root), "partitions": partitions, "write": write, "jobs": jobs}))
-    m = measure.run(_python() + ["-m", "benchmarks.rocksdb_steps", str(plan)], env=_env())
+def _run_steps(module: str, plan: dict[str, Any], scratch: Path) -> dict[str, Any]:
+    """Run ``python -m benchmarks.<module>`` on ``plan``; its last output line, as JSON."""
+    path = scratch / f"{module}-plan.json"
+    path.write_text(json.dumps(plan))
+    m = measure.run(_python() + ["-m", f"benchmarks.{module}", str(path)], env=_env())
     if m.returncode != 0:
-        raise SystemExit(f"RocksDB steps failed:\n{m.stderr[-3000:]}")
+        raise SystemExit(f"{module} failed:\n{m.stderr[-3000:]}")
     return json.loads(m.stdout.strip().splitlines()[-1])
+
+
+def run_rocksdb_steps(root: Path, partitions: int, write: bool, jobs: int, scratch: Path) -> dict[str, float]:
+    return _run_steps("rocksdb_steps", {"root": str(root), "partitions": partitions, "write": write, "jobs": jobs}, scratch)
 
 
 def run_codec_steps(kind: str, root: Path, jobs: int, scratch: Path) -> dict[str, Any]:
-    plan = scratch / "codec-plan.json"
-    plan.write_text(json.dumps({"kind": kind, "root": str(root), "jobs": jobs}))
-    m = measure.run(_python() + ["-m", "benchmarks.codec_steps", str(plan)], env=_env())
-    if m.returncode != 0:
-        raise SystemExit(f"{kind} steps failed:\n{m.stderr[-3000:]}")
-    return json.loads(m.stdout.strip().splitlines()[-1])
+    return _run_steps("codec_steps", {"kind": kind, "root": str(root), "jobs": jobs}, scratch)
 
 
 def _tool(args: list[str], jobs: int, tool_path: str | None, tool_python: str | None = None) -> measure.Measured:
