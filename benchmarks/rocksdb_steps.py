@@ -15,7 +15,9 @@ nothing):
   reads RocksDB must (a convert to RocksDB and an import read their target back as proof);
 * ``write`` (targets only): put the scanned rows, already in key order, into a new table file
   through the tool's compiled put loop and ingest it into a fresh DB with its checkpoint taken
-  (``rocksdb_db._write_run``, ``rocksdb_db.build_db``), with the engine's table options.
+  (``rocksdb_db._write_run``, ``rocksdb_db.build_db``), with the engine's table options. The
+  table file is written beside the checkpoint, on its file system, and the DB in scratch, as the
+  tool writes a partition of one sorted run into a local target.
 
 The times are the CPU seconds of those calls alone (``time.process_time``), summed over the
 partitions, which run over the same number of worker processes as the tool's. A case that does
@@ -30,6 +32,7 @@ import json
 import os
 import shutil
 import sys
+import tempfile
 import time
 from concurrent.futures import ProcessPoolExecutor
 from multiprocessing import get_context
@@ -75,10 +78,17 @@ def partition_steps(task: tuple[str, int, bool]) -> tuple[float, float, int]:
             options = db_options(ck.conf, where)
             out = os.path.join(folder, "out")
             os.mkdir(out)
-            t = time.process_time()
-            run = _write_run([k for k, _ in batches], [v for _, v in batches], options, os.path.join(out, "run.sst"), where, (b"", b""))
-            build_db([run], rows, options, out, where)
-            written = time.process_time() - t
+            # the table file beside the checkpoint, on its file system, as the tool writes a
+            # partition's one run in place in a local target (RocksDBProvider.write)
+            beside = tempfile.mkdtemp(prefix=SCRATCH_PREFIX, dir=os.path.dirname(os.path.abspath(root)))
+            try:
+                t = time.process_time()
+                place = lambda: os.path.join(beside, "run.sst")  # noqa: E731
+                run = _write_run([k for k, _ in batches], [v for _, v in batches], options, place, where, (b"", b""))
+                build_db([run], rows, options, out, where)
+                written = time.process_time() - t
+            finally:
+                shutil.rmtree(beside, ignore_errors=True)
         return scan, written, rows
     finally:
         shutil.rmtree(folder, ignore_errors=True)

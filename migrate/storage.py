@@ -471,6 +471,29 @@ class Location:
         except Exception as exc:  # noqa: BLE001
             self._fail(exc, rel, "upload this file")
 
+    def temp_in(self, rel_dir: str) -> str | None:
+        """On local disk, a new temporary file name in the directory ``rel_dir`` (made now), for a
+        library that writes and syncs a file itself; :meth:`commit_temp` gives it its name there.
+        None on other storage (the caller writes elsewhere and uses :meth:`put_file`)."""
+        if not self.is_local:
+            return None
+        self._check_writable()
+        directory = self.path(rel_dir)
+        try:
+            os.makedirs(directory, exist_ok=True)
+        except Exception as exc:  # noqa: BLE001
+            self._fail(exc, rel_dir, "make this directory")
+        return os.path.join(directory, f".stateshift-{uuid.uuid4().hex}.tmp")
+
+    def commit_temp(self, tmp: str, rel: str) -> None:
+        """Give a file from :meth:`temp_in`, already synced by its writer, the name ``rel``
+        (one rename in the same directory: the file appears whole or not at all)."""
+        self._check_writable()
+        try:
+            os.replace(tmp, self.path(rel))
+        except Exception as exc:  # noqa: BLE001
+            self._fail(exc, rel, "rename this file into place")
+
     def remove(self, rel: str, recursive: bool = False) -> None:
         """Delete a file (one request, no existence probe), or a whole tree with ``recursive``."""
         self._check_writable()

@@ -15,6 +15,7 @@ the engine's delimiter into that line of the restored copy (the operator's ``del
 
 from __future__ import annotations
 
+import functools
 import os
 import shutil
 from collections.abc import Callable, Iterable, Iterator
@@ -285,12 +286,15 @@ class ScratchFolder:
 def sorted_runs(
     batches: Iterable[pa.RecordBatch], encode: Encoder, options, folder: Callable[[int, bool], str], run_bytes: int,
     where: str, on_keys: Callable[[pa.Array], None] = lambda keys: None, prefixes: tuple[bytes, bytes] = (b"", b""),
+    whole_run_path: Callable[[], str | None] | None = None,
 ) -> tuple[list[str], int]:
     """Write the rows as sorted SST runs of about ``run_bytes`` each into ``folder(bytes, whole)``
     (see :meth:`ScratchFolder.path_for`); return (paths, row count). ``encode`` gives the keys and
     values without ``prefixes`` (key prefix, value prefix; ``RowCodec.write_prefixes``), which
     :func:`put_rows` puts in front as it writes: a prefix shared by every key changes neither their
-    order nor which are equal, so the order checks, the sort and ``on_keys`` see the bare keys."""
+    order nor which are equal, so the order checks, the sort and ``on_keys`` see the bare keys.
+    A partition that fits one run is written to ``whole_run_path()`` instead, when that gives a
+    path (the table file's place in a local target: see ``RocksDBProvider.write``)."""
     runs: list[str] = []
     keys: list[pa.Array] = []
     values: list[pa.Array] = []
@@ -309,13 +313,25 @@ def sorted_runs(
         rows += batch.num_rows
         buffered += keys[-1].nbytes + values[-1].nbytes
         if buffered >= run_bytes:
-            path = os.path.join(folder(buffered, False), f"run-{len(runs)}.sst")
-            runs.append(_write_run(keys, values, options, path, where, prefixes))
+            place = functools.partial(_scratch_run, folder, buffered, False, len(runs))
+            runs.append(_write_run(keys, values, options, place, where, prefixes))
             keys, values, buffered = [], [], 0
     if keys:
-        path = os.path.join(folder(buffered, not runs), f"run-{len(runs)}.sst")
-        runs.append(_write_run(keys, values, options, path, where, prefixes))
+        place = functools.partial(_scratch_run, folder, buffered, not runs, len(runs))
+        if whole_run_path is not None and not runs:
+            place = functools.partial(_first_of, whole_run_path, place)
+        runs.append(_write_run(keys, values, options, place, where, prefixes))
     return runs, rows
+
+
+def _scratch_run(folder: Callable[[int, bool], str], need: int, whole: bool, index: int) -> str:
+    """The path of sorted run ``index`` in the scratch folder (``sorted_runs``' ``folder``)."""
+    return os.path.join(folder(need, whole), f"run-{index}.sst")
+
+
+def _first_of(first: Callable[[], str | None], otherwise: Callable[[], str]) -> str:
+    """``first()``, or ``otherwise()`` when that gives None."""
+    return first() or otherwise()
 
 
 def byte_order(keys: pa.Array) -> pa.Array:
@@ -348,8 +364,10 @@ def strictly_increasing(keys: pa.Array) -> bool:
 
 
 def _write_run(
-    keys: list[pa.Array], values: list[pa.Array], options, path: str, where: str, prefixes: tuple[bytes, bytes]
+    keys: list[pa.Array], values: list[pa.Array], options, place: Callable[[], str], where: str, prefixes: tuple[bytes, bytes]
 ) -> str:
+    """One sorted run of the rows into a new table file at ``place()``, asked for once the rows
+    are known to be fit to write (no key twice); returns its path."""
     from rocksdict import SstFileWriter
 
     if _batches_increasing(keys):  # rows replayed from a heap map or read from RocksDB come sorted
@@ -362,6 +380,7 @@ def _write_run(
         if len(k) > 1 and pc.any(pc.equal(k.slice(1), k.slice(0, len(k) - 1))).as_py():
             raise CorruptInput("the rows to write carry the same key twice", where)
         parts = [(k, v)]
+    path = place()
     writer = SstFileWriter(options=options)
     writer.open(path)
     for k, v in parts:
@@ -415,7 +434,14 @@ def build_db(runs: list[str], rows: int, options, tmp: str, where: str) -> str:
     try:
         ingest = IngestExternalFileOptions()
         ingest.set_move_files(True)
-        for run in runs:
+        for i, run in enumerate(runs):
+            if os.path.dirname(run) != tmp:
+                # a run written in place in the target, on another file system: RocksDB's move is a
+                # hard link, so it links a symbolic link made here, and the DB and its checkpoint
+                # hold links to the target's file (observed; RocksDB would copy the file otherwise)
+                link = os.path.join(tmp, f"in-place-{i}.sst")
+                os.symlink(run, link)
+                run = link
             db.ingest_external_file([run], ingest)
         if len(runs) > 1:
             db.compact_range(None, None)  # one sorted, non-overlapping set of table files
