@@ -64,8 +64,8 @@ class _Progress:
             self.bar = tqdm(total=total, unit=self.unit, file=sys.stderr, dynamic_ncols=True, leave=False)
 
     def step(self, result: Any = None) -> None:
-        if result is not None and hasattr(result, "source_digest"):
-            self.rows += result.source_digest.rows
+        if result is not None and hasattr(result, "moved_rows"):
+            self.rows += result.moved_rows
         if self.bar is not None:
             self.bar.update(1)
             self.bar.set_postfix(rows=self.rows, refresh=False)

@@ -110,6 +110,10 @@ class PartitionResult:
     def ok(self) -> bool:
         return self.target_digest is not None and self.target_digest == self.source_digest
 
+    @property
+    def moved_rows(self) -> int:  # what the progress bar counts
+        return self.source_digest.rows
+
     def to_json(self) -> dict[str, Any]:
         return {
             "operator": self.operator_id,

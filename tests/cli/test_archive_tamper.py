@@ -4,6 +4,7 @@ file, non-zero exit, nothing usable at DST (absent, or marked incomplete)."""
 from __future__ import annotations
 
 import json
+import re
 from pathlib import Path
 
 import pytest
@@ -146,5 +147,43 @@ def test_a_sealed_manifest_with_a_wrong_digest_fails_verification_and_stays_inco
     proc = stateshift("import", str(archive), str(dst), "--to", "hdfs", "-j", "1")
     assert proc.returncode == VERIFICATION, proc.stderr
     assert len(proc.stderr.strip().splitlines()) == 1 and "does not match the archive" in proc.stderr
+    # the rows read from the Parquet file are digested once the target does not match: they and
+    # the target agree with each other, so the manifest's digest is the odd one out
+    found = re.search(r"archive (\d+) rows (\w+), read (\d+) rows (\w+), written (\d+) rows (\w+)\)", proc.stderr)
+    assert found, proc.stderr
+    assert found[2] == ("0" if h[0] != "0" else "1") + h[1:]
+    assert found[3] == found[5] == str(target["rows"]) and found[4] == found[6] == h
     _nothing_usable(dst)
     assert dst.exists() and not (dst / "commits").exists() and not (dst / "offsets").exists()
+
+
+def test_a_write_that_loses_a_row_is_caught_and_the_read_is_shown_to_be_right(tmp_path, pristine, monkeypatch):
+    """The archive is sound but the target loses a row as it is written: the read-back does not
+    match, and the message shows the Parquet read matching the archive, so the write is to blame."""
+    import shutil
+
+    from migrate.providers.hdfs import HDFSProvider
+
+    real_write = HDFSProvider.write
+
+    def lossy_write(self, store, version, batches, ctx):
+        def drop_first_row(it):
+            first = True
+            for b in it:
+                if first and b.num_rows:
+                    b, first = b.slice(1), False
+                yield b
+
+        return real_write(self, store, version, drop_first_row(batches), ctx)
+
+    monkeypatch.setattr(HDFSProvider, "write", lossy_write)
+    archive = tmp_path / "archive"
+    shutil.copytree(pristine, archive)
+    dst = tmp_path / "restored"
+    proc = stateshift("import", str(archive), str(dst), "--to", "hdfs", "-j", "1")
+    assert proc.returncode == VERIFICATION, proc.stderr
+    found = re.search(r"archive (\d+) rows (\w+), read (\d+) rows (\w+), written (\d+) rows (\w+)\)", proc.stderr)
+    assert found, proc.stderr
+    assert found[1] == found[3] and found[2] == found[4], "the Parquet read should match the archive"
+    assert int(found[5]) == int(found[1]) - 1 and found[6] != found[2]
+    _nothing_usable(dst)

@@ -50,6 +50,8 @@ def test_export_then_import_restores_the_same_state(tmp_path, name, to):
 
     assert imported["verified"] is True and imported["rows"] == exported["rows"]
     assert all(p["archive_digest"] == p["target_digest"] for p in imported["partitions"])
+    # a target that matches the archive proves the Parquet read too: the read is not digested
+    assert all(p["read_digest"] is None and p["verified"] is True for p in imported["partitions"])
     verdict = ok(stateshift("verify", str(src), str(dst), "--json"))
     assert json.loads(verdict.stdout)["identical"] is True
     # the restored checkpoint is in the requested layout and names its provider everywhere
