@@ -17,7 +17,8 @@ nothing):
   through the tool's compiled put loop and ingest it into a fresh DB with its checkpoint taken
   (``rocksdb_db._write_run``, ``rocksdb_db.build_db``), with the engine's table options. The
   table file is written beside the checkpoint, on its file system, and the DB in scratch, as the
-  tool writes a partition of one sorted run into a local target.
+  tool writes a partition of one sorted run of 4 MiB or more into a local target (the benchmark's
+  10M-key partitions; at 1M they are smaller, and the tool builds them in scratch).
 
 The times are the CPU seconds of those calls alone (``time.process_time``), summed over the
 partitions, which run over the same number of worker processes as the tool's. A case that does

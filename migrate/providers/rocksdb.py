@@ -117,6 +117,11 @@ TRACK_ROWS_CONF = "spark.sql.streaming.stateStore.rocksdb.trackTotalNumberOfRows
 SST_DIR = "SSTs"
 LOG_DIR = "logs"
 RUN_BYTES = 256 << 20  # rows buffered (key + value bytes) before a sorted run is written out
+#: a partition of one sorted run whose rows take at least this many bytes (keys and values) has
+#: its table file written in place in a local target (RocksDBProvider.write); smaller ones are
+#: built in scratch and copied, as before: there RocksDB's device reads of a file it has just
+#: dropped from the page cache cost more than the copy saves (measured, see write)
+IN_PLACE_BYTES = 4 << 20
 
 _ZIP = re.compile(r"^(\d+)\.zip$")
 _ZIP_WITH_ID = re.compile(r"^(\d+)_([0-9A-Za-z-]+)\.zip$")
@@ -179,8 +184,9 @@ class RocksDBProvider(Provider):
     supports_column_families = True
     wants_key_order = True  # table files are written sorted (rocksdb_db.sorted_runs)
 
-    def __init__(self, run_bytes: int = RUN_BYTES) -> None:
+    def __init__(self, run_bytes: int = RUN_BYTES, in_place_bytes: int = IN_PLACE_BYTES) -> None:
         self.run_bytes = run_bytes
+        self.in_place_bytes = in_place_bytes
 
     # ---------------------------------------------------------------- layout
     def versions(self, listing: dict[str, Entry]) -> list[int]:
@@ -511,20 +517,25 @@ class RocksDBProvider(Provider):
 
         options = db_options(_engine_conf(ctx, families, where), where)
         folder = ScratchFolder("stateshift-rocksdb-w-")
-        # A partition of one sorted run (every partition but the largest) has its table file
-        # written in place in a local target, under a temporary name in its SSTs folder, and
-        # renamed once the version is built; the scratch DB ingests it through a link
-        # (build_db). Before, RocksDB wrote it in scratch and it was copied: every byte written
-        # twice, once into fresh tmpfs pages. RocksDB syncs the file it writes and then drops it
-        # from the page cache (observed: fincore shows none of it resident after finish() on
-        # ext4, all of it on tmpfs), so the sidecar CRC reads it back from the device once.
-        # Measured on the 10M-key benchmark, four alternating pairs of whole commands (medians):
-        # convert heap map -> RocksDB 11.37 -> 10.96 CPU s (system 1.21-1.43 -> 0.80-0.97), 6.06 ->
-        # 5.84 s; import to RocksDB 9.85 -> 9.67 CPU s, 5.31 -> 5.22 s
-        # (benchmarks/results/2026-12-04-ab-sst-in-place.md).
+        # A partition of one sorted run of at least in_place_bytes has its table file written in
+        # place in a local target, under a temporary name in its SSTs folder, and renamed once
+        # the version is built; the scratch DB ingests it through a link (build_db). Otherwise
+        # RocksDB writes it in scratch and it is copied: every byte written twice, once into
+        # fresh tmpfs pages. RocksDB syncs the file it writes and then drops it from the page
+        # cache (observed: fincore shows none of it resident after finish() on ext4, all of it on
+        # tmpfs), so its ingest and the sidecar CRC read it back from the device: for a small
+        # file those reads cost more than the copy saves. Measured, alternating pairs of whole
+        # commands (medians; benchmarks/results/2026-12-04-ab-sst-in-place.md), every partition
+        # in place: 10M keys over 64 partitions (about 14 MB of rows each), convert heap map ->
+        # RocksDB 11.37 -> 10.96 and 11.29 -> 11.03 CPU s in two series (system time lower in
+        # every pair), import to RocksDB 9.85 -> 9.67 CPU s; 1M keys over 64 partitions (1.4 MB
+        # each) 2.05 -> 2.04 CPU s; over 256 (0.35 MB each) 3.34 -> 3.61 CPU s, 2.11 -> 2.27 s.
+        # Hence the 4 MiB floor (with it, 3.55 -> 3.57 CPU s over 256: the old path).
         in_place: list[str] = []  # the table file written in the target under a temporary name
 
-        def whole_run_path() -> str | None:
+        def whole_run_path(need: int) -> str | None:
+            if need < self.in_place_bytes:
+                return None
             tmp = store.location.temp_in(f"{_prefix(store)}{SST_DIR}")
             if tmp is not None:
                 in_place.append(tmp)

@@ -286,15 +286,15 @@ class ScratchFolder:
 def sorted_runs(
     batches: Iterable[pa.RecordBatch], encode: Encoder, options, folder: Callable[[int, bool], str], run_bytes: int,
     where: str, on_keys: Callable[[pa.Array], None] = lambda keys: None, prefixes: tuple[bytes, bytes] = (b"", b""),
-    whole_run_path: Callable[[], str | None] | None = None,
+    whole_run_path: Callable[[int], str | None] | None = None,
 ) -> tuple[list[str], int]:
     """Write the rows as sorted SST runs of about ``run_bytes`` each into ``folder(bytes, whole)``
     (see :meth:`ScratchFolder.path_for`); return (paths, row count). ``encode`` gives the keys and
     values without ``prefixes`` (key prefix, value prefix; ``RowCodec.write_prefixes``), which
     :func:`put_rows` puts in front as it writes: a prefix shared by every key changes neither their
     order nor which are equal, so the order checks, the sort and ``on_keys`` see the bare keys.
-    A partition that fits one run is written to ``whole_run_path()`` instead, when that gives a
-    path (the table file's place in a local target: see ``RocksDBProvider.write``)."""
+    A partition that fits one run is written to ``whole_run_path(bytes)`` instead, when that
+    gives a path (the table file's place in a local target: see ``RocksDBProvider.write``)."""
     runs: list[str] = []
     keys: list[pa.Array] = []
     values: list[pa.Array] = []
@@ -319,7 +319,7 @@ def sorted_runs(
     if keys:
         place = functools.partial(_scratch_run, folder, buffered, not runs, len(runs))
         if whole_run_path is not None and not runs:
-            place = functools.partial(_first_of, whole_run_path, place)
+            place = functools.partial(_first_of, functools.partial(whole_run_path, buffered), place)
         runs.append(_write_run(keys, values, options, place, where, prefixes))
     return runs, rows
 

@@ -1,8 +1,10 @@
-"""A RocksDB partition of one sorted run, written to local disk, has its table file written in
-place in the target (under a temporary name, renamed once the version is built) instead of in
-scratch and then copied; the scratch DB ingests it through a symbolic link. Everything else is
-copied as before: partitions of several runs (their table files come out of a compaction in
-scratch) and every target off local disk. A write that fails leaves no temporary file behind.
+"""A RocksDB partition of one sorted run of at least ``in_place_bytes`` of rows, written to local
+disk, has its table file written in place in the target (under a temporary name, renamed once the
+version is built) instead of in scratch and then copied; the scratch DB ingests it through a
+symbolic link. Everything else is copied as before: smaller partitions, partitions of several runs
+(their table files come out of a compaction in scratch) and every target off local disk. A write
+that fails leaves no temporary file behind. The tests lower the threshold to 0 where they need
+the in-place write (their rows take about 40 KB).
 """
 
 from __future__ import annotations
@@ -69,7 +71,7 @@ def _leftovers(root: Path) -> list[Path]:
 def test_one_run_on_local_disk_is_written_in_place_and_renamed(tmp_path: Path, monkeypatch) -> None:
     spy = _Spy(monkeypatch)
     store = StoreDir(open_location(str(tmp_path), readonly=False), "state/0/4", 0, 4)
-    written = RocksDBProvider().write(store, 3, _batches(ROWS), WriteContext(write_crc=True))
+    written = RocksDBProvider(in_place_bytes=0).write(store, 3, _batches(ROWS), WriteContext(write_crc=True))
     ssts = [w.rel for w in written if w.rel.endswith(".sst")]
     assert len(ssts) == 1
     assert not [c for c in spy.copied if c.endswith(".sst")], "the table file was copied, not renamed"
@@ -92,7 +94,7 @@ def test_one_run_on_local_disk_is_written_in_place_and_renamed(tmp_path: Path, m
 def test_several_runs_are_copied_from_the_compaction(tmp_path: Path, monkeypatch) -> None:
     spy = _Spy(monkeypatch)
     store = StoreDir(open_location(str(tmp_path), readonly=False), "state/0/0", 0, 0)
-    RocksDBProvider(run_bytes=4096).write(store, 3, _batches(ROWS, 100), WriteContext(write_crc=False))
+    RocksDBProvider(run_bytes=4096, in_place_bytes=0).write(store, 3, _batches(ROWS, 100), WriteContext(write_crc=False))
     assert not spy.renamed
     assert [c for c in spy.copied if c.endswith(".sst")]
     assert not _leftovers(tmp_path)
@@ -106,7 +108,7 @@ def test_a_target_off_local_disk_gets_its_table_file_copied(monkeypatch) -> None
     try:
         assert loc.temp_in("state/0/0/SSTs") is None
         store = StoreDir(loc, "state/0/0", 0, 0)
-        RocksDBProvider().write(store, 3, _batches(ROWS), WriteContext(write_crc=False))
+        RocksDBProvider(in_place_bytes=0).write(store, 3, _batches(ROWS), WriteContext(write_crc=False))
         assert not spy.renamed
         assert [c for c in spy.copied if c.endswith(".sst")]
         assert _read(store) == ROWS
@@ -130,7 +132,7 @@ def test_a_build_that_fails_after_the_run_leaves_no_temporary_file(tmp_path: Pat
     monkeypatch.setattr("migrate.providers.rocksdb.build_db", broken)
     store = StoreDir(open_location(str(tmp_path), readonly=False), "state/0/0", 0, 0)
     with pytest.raises(CorruptInput, match="the build failed"):
-        RocksDBProvider().write(store, 3, _batches(ROWS), WriteContext())
+        RocksDBProvider(in_place_bytes=0).write(store, 3, _batches(ROWS), WriteContext())
     assert seen and os.path.dirname(seen[0]) == str(tmp_path / "state/0/0/SSTs"), "the run was not written in place"
     assert not os.path.exists(seen[0])
     assert not _leftovers(tmp_path)
@@ -141,7 +143,7 @@ def test_rows_refused_before_the_run_is_placed_make_no_file(tmp_path: Path) -> N
     twice = ROWS[:10] + ROWS[5:6]
     store = StoreDir(open_location(str(tmp_path), readonly=False), "state/0/0", 0, 0)
     with pytest.raises(CorruptInput, match="same key twice"):
-        RocksDBProvider().write(store, 3, _batches(twice, 4), WriteContext())
+        RocksDBProvider(in_place_bytes=0).write(store, 3, _batches(twice, 4), WriteContext())
     assert not (tmp_path / "state/0/0/SSTs").exists()
     assert not _leftovers(tmp_path)
 
@@ -149,10 +151,10 @@ def test_rows_refused_before_the_run_is_placed_make_no_file(tmp_path: Path) -> N
 def test_a_rewritten_version_is_the_same_store_either_way(tmp_path: Path, monkeypatch) -> None:
     """The in-place write and the copy give table files with the same rows and the same size."""
     in_place = StoreDir(open_location(str(tmp_path / "a"), readonly=False), "s", 0, 0)
-    RocksDBProvider().write(in_place, 3, _batches(ROWS), WriteContext(write_crc=False))
+    RocksDBProvider(in_place_bytes=0).write(in_place, 3, _batches(ROWS), WriteContext(write_crc=False))
     monkeypatch.setattr(Location, "temp_in", lambda loc, rel_dir: None)  # as off local disk
     copied = StoreDir(open_location(str(tmp_path / "b"), readonly=False), "s", 0, 0)
-    RocksDBProvider().write(copied, 3, _batches(ROWS), WriteContext(write_crc=False))
+    RocksDBProvider(in_place_bytes=0).write(copied, 3, _batches(ROWS), WriteContext(write_crc=False))
     sizes = [sorted(p.stat().st_size for p in (tmp_path / d / "s/SSTs").glob("*.sst")) for d in ("a", "b")]
     assert sizes[0] == sizes[1] and sizes[0]
     assert _read(in_place) == _read(copied) == ROWS
@@ -164,3 +166,17 @@ def test_temp_in_and_commit_temp_refuse_a_read_only_location(tmp_path: Path) -> 
         loc.temp_in("SSTs")
     with pytest.raises(Exception, match="read-only"):
         loc.commit_temp(str(tmp_path / "x"), "y")
+
+
+def test_a_partition_below_the_threshold_is_built_in_scratch_and_copied(tmp_path: Path, monkeypatch) -> None:
+    spy = _Spy(monkeypatch)
+    rows_bytes = sum(len(k) + len(v) for k, v in ROWS)
+    store = StoreDir(open_location(str(tmp_path), readonly=False), "state/0/0", 0, 0)
+    RocksDBProvider(in_place_bytes=10 * rows_bytes).write(store, 3, _batches(ROWS), WriteContext(write_crc=False))
+    assert not spy.renamed and [c for c in spy.copied if c.endswith(".sst")]
+    spy.copied.clear()
+    other = StoreDir(open_location(str(tmp_path), readonly=False), "state/0/1", 0, 1)
+    RocksDBProvider(in_place_bytes=rows_bytes).write(other, 3, _batches(ROWS), WriteContext(write_crc=False))
+    assert len(spy.renamed) == 1 and not [c for c in spy.copied if c.endswith(".sst")]
+    assert _read(store) == _read(other) == ROWS
+    assert not _leftovers(tmp_path)
