@@ -180,3 +180,20 @@ def test_a_partition_below_the_threshold_is_built_in_scratch_and_copied(tmp_path
     assert len(spy.renamed) == 1 and not [c for c in spy.copied if c.endswith(".sst")]
     assert _read(store) == _read(other) == ROWS
     assert not _leftovers(tmp_path)
+
+
+def test_scratch_without_symbolic_links_still_builds_the_partition(tmp_path: Path, monkeypatch) -> None:
+    """Where no link can be made in scratch, RocksDB copies the run into its DB, the table file
+    is put into the target as before, and the temporary file in the target is removed."""
+    spy = _Spy(monkeypatch)
+
+    def no_links(src, dst, *args, **kwargs):
+        raise OSError(95, "Operation not supported", dst)
+
+    monkeypatch.setattr(rocksdb_db.os, "symlink", no_links)
+    store = StoreDir(open_location(str(tmp_path), readonly=False), "state/0/0", 0, 0)
+    RocksDBProvider(in_place_bytes=0).write(store, 3, _batches(ROWS), WriteContext(write_crc=True))
+    monkeypatch.undo()
+    assert not spy.renamed and [c for c in spy.copied if c.endswith(".sst")]
+    assert not _leftovers(tmp_path)
+    assert _read(store) == ROWS
