@@ -556,7 +556,8 @@ class RocksDBProvider(Provider):
                 dfs = f"{local[: -len('.sst')]}-{uuid.uuid4()}.sst"
                 rel = f"{_prefix(store)}{SST_DIR}/{dfs}"
                 if in_place and os.path.islink(path) and os.readlink(path) == in_place[0]:
-                    # the run written in place, already synced by RocksDB: renamed, not copied
+                    # the run written in place: synced (RocksDB's finish synced it already: an
+                    # fdatasync, observed with strace) and renamed, not copied
                     size = os.path.getsize(in_place[0])
                     store.location.commit_temp(in_place.pop(), rel)
                     path = store.location.path(rel)

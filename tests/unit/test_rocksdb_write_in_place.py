@@ -197,3 +197,18 @@ def test_scratch_without_symbolic_links_still_builds_the_partition(tmp_path: Pat
     assert not spy.renamed and [c for c in spy.copied if c.endswith(".sst")]
     assert not _leftovers(tmp_path)
     assert _read(store) == ROWS
+
+
+def test_commit_temp_syncs_the_file_before_the_rename(tmp_path: Path, monkeypatch) -> None:
+    loc = open_location(str(tmp_path), readonly=False)
+    tmp = loc.temp_in("SSTs")
+    assert tmp is not None and os.path.dirname(tmp) == str(tmp_path / "SSTs")
+    Path(tmp).write_bytes(b"table bytes")
+    events: list[str] = []
+    real_fsync, real_replace = os.fsync, os.replace
+    monkeypatch.setattr(os, "fsync", lambda fd: (events.append("fsync"), real_fsync(fd))[1])
+    monkeypatch.setattr(os, "replace", lambda a, b: (events.append("rename"), real_replace(a, b))[1])
+    loc.commit_temp(tmp, "SSTs/000008-x.sst")
+    monkeypatch.undo()
+    assert events == ["fsync", "rename"]
+    assert (tmp_path / "SSTs/000008-x.sst").read_bytes() == b"table bytes" and not os.path.exists(tmp)
