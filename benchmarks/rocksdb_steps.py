@@ -29,6 +29,7 @@ reach. Not part of the tool.
 
 from __future__ import annotations
 
+import functools
 import json
 import os
 import shutil
@@ -84,7 +85,7 @@ def partition_steps(task: tuple[str, int, bool]) -> tuple[float, float, int]:
             beside = tempfile.mkdtemp(prefix=SCRATCH_PREFIX, dir=os.path.dirname(os.path.abspath(root)))
             try:
                 t = time.process_time()
-                place = lambda: os.path.join(beside, "run.sst")  # noqa: E731
+                place = functools.partial(os.path.join, beside, "run.sst")
                 run = _write_run([k for k, _ in batches], [v for _, v in batches], options, place, where, (b"", b""))
                 build_db([run], rows, options, out, where)
                 written = time.process_time() - t

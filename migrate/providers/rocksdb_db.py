@@ -317,9 +317,11 @@ def sorted_runs(
             runs.append(_write_run(keys, values, options, place, where, prefixes))
             keys, values, buffered = [], [], 0
     if keys:
-        place = functools.partial(_scratch_run, folder, buffered, not runs, len(runs))
-        if whole_run_path is not None and not runs:
-            place = functools.partial(_first_of, functools.partial(whole_run_path, buffered), place)
+
+        def place() -> str:
+            in_target = whole_run_path(buffered) if whole_run_path is not None and not runs else None
+            return in_target or _scratch_run(folder, buffered, not runs, len(runs))
+
         runs.append(_write_run(keys, values, options, place, where, prefixes))
     return runs, rows
 
@@ -327,11 +329,6 @@ def sorted_runs(
 def _scratch_run(folder: Callable[[int, bool], str], need: int, whole: bool, index: int) -> str:
     """The path of sorted run ``index`` in the scratch folder (``sorted_runs``' ``folder``)."""
     return os.path.join(folder(need, whole), f"run-{index}.sst")
-
-
-def _first_of(first: Callable[[], str | None], otherwise: Callable[[], str]) -> str:
-    """``first()``, or ``otherwise()`` when that gives None."""
-    return first() or otherwise()
 
 
 def byte_order(keys: pa.Array) -> pa.Array:
