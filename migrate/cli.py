@@ -10,6 +10,8 @@ Exit codes (documented in the README):
   5  verification failed (read-back mismatch, or verify found differences)
   6  unsafe target refused (not empty, inside the source, the source itself)
   7  the source looks like a running query
+  8  the machine or the storage failed the run (a full or read-only disk, an I/O or network error,
+     access denied, a worker process killed); a target is left marked incomplete
   130 interrupted
 """
 
@@ -26,7 +28,7 @@ from typing import Any
 # workers' fork server first, and these imports took 0.17 s of the 0.26 s before it could
 # (measured with ``python -X importtime``).
 from . import __version__, workers
-from .errors import StateshiftError
+from .errors import StateshiftError, os_failure
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -257,6 +259,10 @@ def _main(argv: list[str]) -> int:
     except KeyboardInterrupt:
         print("stateshift: interrupted; the target (if any) is left marked incomplete", file=sys.stderr)
         return 130
+    except OSError as exc:  # the machine failed a step that names no file of its own
+        failure = os_failure(exc, "go on")
+        print(f"stateshift: error: {mask_text(str(failure), secrets)}", file=sys.stderr)
+        return failure.exit_code
     except Exception as exc:  # noqa: BLE001 - the one place that turns crashes into an exit code
         text = mask_text(f"{type(exc).__name__}: {exc}", secrets)
         print(f"stateshift: internal error: {' '.join(text.split())}", file=sys.stderr)

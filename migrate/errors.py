@@ -5,6 +5,10 @@ Every error carries a one-line message that names the file (or URL) and what is 
 
 from __future__ import annotations
 
+import errno
+import os
+import re
+
 
 class StateshiftError(Exception):
     """Base class. ``exit_code`` is the documented process exit status for this kind of error."""
@@ -55,3 +59,62 @@ class QueryMayBeRunning(StateshiftError):
     """The source looks like a query is still writing to it."""
 
     exit_code = 7
+
+
+class SystemFailure(StateshiftError):
+    """The machine or the storage failed the run, not the input: a file could not be read or
+    written (a full disk, a read-only file system, an I/O error, the network, credentials), or a
+    worker process was killed. A target is left marked incomplete; fix the cause and rerun (a
+    convert or an import with ``--resume``, an export with ``--overwrite``)."""
+
+    exit_code = 8
+
+
+#: what the errors a full, read-only or failing disk gives mean, in the words of the message
+_OS_MEANING = {
+    errno.ENOSPC: "no space left on the device",
+    errno.EDQUOT: "the disk quota is exhausted",
+    errno.EFBIG: "the file is larger than this process may write: a file size limit, see `ulimit -f`",
+    errno.EROFS: "the file system is read-only",
+    errno.EIO: "the device reported an input/output error",
+    errno.EACCES: "access denied by the permissions",
+    errno.EPERM: "operation not permitted",
+}
+
+#: a folder made by ``migrate.scratch.make``: ``stateshift-<purpose>-<pid>-<random>``
+_SCRATCH_FOLDER = re.compile(r"(?:^|/)stateshift-[a-z]+(?:-[a-z]+)*-\d+-[A-Za-z0-9_]+(?:/|$)")
+
+
+def os_failure(exc: OSError, action: str, where: str | None = None) -> SystemFailure:
+    """The one-line :class:`SystemFailure` for an operating-system error met while trying to
+    ``action`` (e.g. "write this file"), naming ``where`` (else the error's own file name). A file
+    in one of the tool's scratch folders gets the hint where scratch space comes from."""
+    where = where or (os.fsdecode(exc.filename) if exc.filename is not None else None)
+    code = exc.errno if isinstance(exc.errno, int) else None
+    meaning = _OS_MEANING.get(code) if code is not None else None
+    detail = meaning or (exc.strerror or str(exc) or type(exc).__name__)
+    name = f" ({errno.errorcode[code]})" if code in errno.errorcode else ""
+    return SystemFailure(f"could not {action}: {detail}{name}{scratch_hint(where or '')}", where)
+
+
+#: words of RocksDB's ``IO error`` statuses (the ``strerror`` of the failed call) for a machine
+#: that failed, not data that is wrong
+_MACHINE_WORDS = ("No space left", "Read-only file system", "quota", "File too large", "Input/output error", "Permission denied")
+
+
+def library_failure(exc: BaseException, action: str, where: str | None = None) -> SystemFailure | None:
+    """The :class:`SystemFailure` for a library error whose text reports the machine failing (a
+    RocksDB ``IO error`` status, as rocksdict raises it, for a full, read-only or quota-bound
+    disk, a file size limit, a device error or a permission), else None: then the caller's own
+    reading of the error stands."""
+    text = " ".join(str(exc).split())
+    if not (text.startswith("IO error") and any(w in text for w in _MACHINE_WORDS)):
+        return None
+    return SystemFailure(f"could not {action}: RocksDB: {text}{scratch_hint(text)}", where)
+
+
+def scratch_hint(text: str) -> str:
+    """"; ..." naming where scratch space comes from, when ``text`` names a file in a scratch folder."""
+    if _SCRATCH_FOLDER.search(text):
+        return "; this is a scratch folder: free space there or set STATESHIFT_SCRATCH to a directory with more room"
+    return ""

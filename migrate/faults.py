@@ -2,7 +2,8 @@
 
 ``STATESHIFT_CRASH_AT=<event>:<n>`` makes the process SIGKILL itself the n-th time it reaches
 ``<event>`` (events: ``partition-written``, ``file-written``, ``mid-file``, ``before-logs``,
-``before-metadata``). Nothing happens when the variable is unset. This is how the tests prove that
+``before-metadata``, and ``worker-task``: a worker process starting a store partition, counted
+per worker). Nothing happens when the variable is unset. This is how the tests prove that
 a process killed at any of these points leaves no usable-looking target and that ``--resume``
 finishes the job.
 """

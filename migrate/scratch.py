@@ -32,6 +32,7 @@ import shutil
 import stat
 import tempfile
 import time
+from collections.abc import Callable
 
 from .errors import UsageError
 
@@ -131,6 +132,20 @@ def sweep(now: float | None = None) -> list[str]:
     exists and which have not changed for :data:`STALE_AFTER` seconds. Returns the removed paths.
     Errors are ignored: this is housekeeping, never a reason to stop a command."""
     now = time.time() if now is None else now
+    return _remove_ours(lambda pid, st: now - st.st_mtime >= STALE_AFTER and not _alive(pid))
+
+
+def remove_left_by(pids: set[int]) -> list[str]:
+    """Remove the scratch folders of these processes, which the caller saw die (a worker killed
+    while it moved a partition cannot remove its own); returns the removed paths. Errors are
+    ignored, as in :func:`sweep`."""
+    return _remove_ours(lambda pid, st: pid in pids) if pids else []
+
+
+def _remove_ours(remove: Callable[[int, os.stat_result], bool]) -> list[str]:
+    """Remove the folders named by :func:`make` in every place :func:`directory` may choose that
+    are directories (not symbolic links) owned by this user, made by another process than this
+    one, and for which ``remove(pid, lstat)`` is true."""
     places = {os.environ.get(ENV) or "", tempfile.gettempdir(), SHM} - {""}
     removed = []
     for place in sorted(places):
@@ -148,7 +163,7 @@ def sweep(now: float | None = None) -> list[str]:
                 st = os.lstat(path)  # a symbolic link is not a directory here
             except OSError:
                 continue
-            if not stat.S_ISDIR(st.st_mode) or st.st_uid != os.getuid() or now - st.st_mtime < STALE_AFTER or _alive(pid):
+            if not stat.S_ISDIR(st.st_mode) or st.st_uid != os.getuid() or not remove(pid, st):
                 continue
             shutil.rmtree(path, ignore_errors=True)
             removed.append(path)

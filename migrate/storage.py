@@ -30,20 +30,26 @@ of a bucket name.
 
 from __future__ import annotations
 
+import contextlib
+import errno
 import os
 import re
 import shutil
 import uuid
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from typing import IO, Any, NoReturn
 from urllib.parse import parse_qsl, unquote, urlsplit, urlunsplit
 
 from . import faults
-from .errors import CorruptInput, StateshiftError, UsageError
+from .errors import CorruptInput, StateshiftError, SystemFailure, UsageError, os_failure
 
 # The error for a storage request that failed for a reason other than a missing file (unreachable
-# endpoint, access denied, throttling). Exit code 2: it is almost always a wrong option value.
-StorageFailure = UsageError
+# endpoint, access denied, throttling, a full or read-only local disk): the machine or the storage
+# failed the run (exit 8), which a wrong option value can cause too.
+StorageFailure = SystemFailure
+#: errors only writing a file gives: a copy that fails with one failed on the side it writes
+_WRITE_SIDE = frozenset((errno.ENOSPC, errno.EDQUOT, errno.EFBIG, errno.EROFS))
 
 _SECRET_WORDS = "secret|password|passwd|token|key|credential|signature|sas|sig"
 _SECRET_KEYS = re.compile(rf"({_SECRET_WORDS})", re.IGNORECASE)
@@ -209,6 +215,21 @@ def _local_fs() -> Any:
     return fsspec.filesystem("file")
 
 
+@contextlib.contextmanager
+def _removed_on_error(path: str) -> Iterator[None]:
+    """Remove the temporary file ``path`` when the block fails (a full disk keeps no half-written
+    file taking its space); a process killed in the block leaves it to ``--resume``, which clears
+    the folders it rewrites. A failure to remove it does not hide the error that got here."""
+    try:
+        yield
+    except BaseException:
+        try:
+            os.remove(path)
+        except OSError:
+            pass
+        raise
+
+
 @dataclass(frozen=True)
 class Location:
     """A root URL on one fsspec filesystem. On local disk (``driver`` None, opened without storage
@@ -260,9 +281,17 @@ class Location:
         ro = self.readonly if readonly is None else readonly
         return Location(self.driver, self.path(rel), self.describe(rel), ro, self.options, self.protocols)
 
+    def raise_failure(self, exc: BaseException, rel: str, action: str) -> NoReturn:
+        """Raise the one-line error for a request on the file ``rel`` that failed with ``exc``
+        outside this class (a writer streaming into a file this location opened)."""
+        self._fail(exc, rel, action)
+
     def _fail(self, exc: BaseException, rel: str, action: str) -> NoReturn:
         """Raise the one-line, credential-free error for a failed storage request."""
         where = self.describe(rel)
+        if self.is_local and isinstance(exc, OSError):
+            # the local disk, not a storage service: its own words, no endpoint to check
+            raise os_failure(exc, action, where) from exc
         if isinstance(exc, PermissionError):
             raise StorageFailure(f"access denied while trying to {action} (check the credentials and permissions)", where) from exc
         detail = mask_text(" ".join(str(exc).split()), self.secrets())[:300]
@@ -398,6 +427,10 @@ class Location:
             self.fs.get_file(self.path(rel), local_path)
         except FileNotFoundError as exc:
             raise CorruptInput("file is missing", self.describe(rel)) from exc
+        except OSError as exc:
+            if exc.errno in _WRITE_SIDE:  # the copy's own disk failed it, not this file
+                raise os_failure(exc, f"copy {self.describe(rel)} here", local_path) from exc
+            self._fail(exc, rel, "download this file")
         except Exception as exc:  # noqa: BLE001
             self._fail(exc, rel, "download this file")
 
@@ -430,15 +463,16 @@ class Location:
                 directory = os.path.dirname(target)
                 os.makedirs(directory, exist_ok=True)
                 tmp = os.path.join(directory, f".stateshift-{uuid.uuid4().hex}.tmp")
-                with open(tmp, "wb") as f:
-                    half = len(data) // 2
-                    view = memoryview(data)  # halves without copies of the data
-                    f.write(view[:half])
-                    faults.reached("mid-file")
-                    f.write(view[half:])
-                    f.flush()
-                    os.fsync(f.fileno())
-                os.replace(tmp, target)
+                with _removed_on_error(tmp):
+                    with open(tmp, "wb") as f:
+                        half = len(data) // 2
+                        view = memoryview(data)  # halves without copies of the data
+                        f.write(view[:half])
+                        faults.reached("mid-file")
+                        f.write(view[half:])
+                        f.flush()
+                        os.fsync(f.fileno())
+                    os.replace(tmp, target)
             else:
                 # one request; a PUT is all-or-nothing, so "mid-file" means "before the PUT" here
                 faults.reached("mid-file")
@@ -459,17 +493,18 @@ class Location:
                 directory = os.path.dirname(target)
                 os.makedirs(directory, exist_ok=True)
                 tmp = os.path.join(directory, f".stateshift-{uuid.uuid4().hex}.tmp")
-                with open(local_path, "rb") as src, open(tmp, "wb") as dst:
-                    while chunk := src.read(1 << 20):
-                        dst.write(chunk)
-                    dst.flush()
-                    os.fsync(dst.fileno())
-                os.replace(tmp, target)
+                with _removed_on_error(tmp):
+                    with open(local_path, "rb") as src, open(tmp, "wb") as dst:
+                        while chunk := src.read(1 << 20):
+                            dst.write(chunk)
+                        dst.flush()
+                        os.fsync(dst.fileno())
+                    os.replace(tmp, target)
             else:
                 self._parent_for_write(rel)
                 self.fs.put_file(local_path, target)
         except Exception as exc:  # noqa: BLE001
-            self._fail(exc, rel, "upload this file")
+            self._fail(exc, rel, "write this file" if self.is_local else "upload this file")
 
     def temp_in(self, rel_dir: str) -> str | None:
         """On local disk, a new temporary file name in the directory ``rel_dir`` (made now), for a

@@ -10,11 +10,13 @@ Nothing here knows about providers: batches of raw ``key``/``value`` rows come i
 
 from __future__ import annotations
 
+import contextlib
+import functools
 import hashlib
 import io
 import os
 import uuid
-from collections.abc import Iterable
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 from typing import IO
 from urllib.parse import quote
@@ -99,6 +101,15 @@ class WrittenData:
     decode_error: str | None  # the first reason a batch did not decode, if any
 
 
+@contextlib.contextmanager
+def _sink_errors(loc: Location, rel: str) -> Iterator[None]:
+    """An OSError in the block is the failure to write the archive file ``rel`` (one line, exit 8)."""
+    try:
+        yield
+    except OSError as exc:
+        loc.raise_failure(exc, rel, "write this file")
+
+
 def _open_target(loc: Location, rel: str) -> tuple[IO[bytes], str | None]:
     """(file object, temporary local path to rename on success or None)."""
     target = loc.path(rel)
@@ -128,10 +139,17 @@ def write_data_file(
     stream = DigestingIterator(batches)
     undecoded = 0
     first_error: str | None = None
-    handle, tmp = _open_target(loc, rel)
-    sink = _HashingWriter(handle)
     try:
-        writer = parquet_writer(sink, schema)
+        handle, tmp = _open_target(loc, rel)
+    except OSError as exc:
+        loc.raise_failure(exc, rel, "create this file")
+    sink = _HashingWriter(handle)
+    # an OSError from the sink (a full disk, a failed upload) is this file's failure; one from
+    # reading the rows (outside these blocks) is the source's
+    sink_failure = functools.partial(_sink_errors, loc, rel)
+    try:
+        with sink_failure():
+            writer = parquet_writer(sink, schema)
         try:
             for batch in stream:
                 if batch.num_rows == 0:
@@ -140,19 +158,25 @@ def write_data_file(
                 if error is not None:
                     undecoded += batch.num_rows
                     first_error = first_error or error
-                writer.write_batch(out)
+                with sink_failure():
+                    writer.write_batch(out)
         finally:
-            writer.close()
-        handle.flush()
-        if tmp is not None:
-            os.fsync(handle.fileno())
-        handle.close()
-        if tmp is not None:
-            os.replace(tmp, loc.path(rel))
-            tmp = None
+            with sink_failure():
+                writer.close()
+        with sink_failure():
+            handle.flush()
+            if tmp is not None:
+                os.fsync(handle.fileno())
+            handle.close()
+            if tmp is not None:
+                os.replace(tmp, loc.path(rel))
+                tmp = None
     finally:
         if not handle.closed:
-            handle.close()
+            try:
+                handle.close()
+            except OSError:  # the error that got here is the one to report
+                pass
         if tmp is not None and os.path.exists(tmp):
             os.remove(tmp)
     return WrittenData(rel, sink.size, sink.sha256.hexdigest(), stream.digest, stream.key_bytes, stream.value_bytes, undecoded, first_error)

@@ -11,10 +11,11 @@ import argparse
 import os
 from collections.abc import Callable, Iterable
 from concurrent.futures import ProcessPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field
 from typing import Any
 
-from .. import workers
+from .. import faults, scratch, workers
 from ..checkpoint.engine import (
     SPARK_35,
     EngineInference,
@@ -28,7 +29,7 @@ from ..checkpoint.engine import (
 from ..checkpoint.model import Checkpoint, StorePartition
 from ..checkpoint.uids import derived_uid, partition_uid
 from ..digest import Digest, DigestingIterator, digest_batches
-from ..errors import StateshiftError, UnsafeTarget, UsageError
+from ..errors import StateshiftError, SystemFailure, UnsafeTarget, UsageError, os_failure
 from ..providers import provider_for
 from ..providers.base import ReadContext, StoreDir, WriteContext, WrittenFile
 from ..storage import Location
@@ -92,6 +93,10 @@ class PartitionTask:
     source_uid: str | None = None  # id of the source version (state checkpoint format 2)
     target_uid: str | None = None  # id to give the written version (format 2 target)
     engine: str = "4.x"  # engine family the target is written for (checkpoint.engine)
+
+    @property
+    def where(self) -> str:  # what an error while moving it names
+        return self.target.describe()
 
 
 @dataclass(frozen=True)
@@ -307,25 +312,78 @@ def run_tasks(
     if not uses_workers(jobs, tasks):
         workers.stop_soon()  # one started on a guess
         for t in tasks:
-            r = fn(t)
+            r = run_task(fn, t)
             on_done(r)
             results.append(r)
         return results
+    died: tuple[PartitionTask, list[Any]] | None = None
     try:
         with ProcessPoolExecutor(max_workers=jobs, mp_context=workers.context()) as pool:
-            pending = [pool.submit(fn, t) for t in tasks]
-            for fut in pending:
+            pending = [pool.submit(_run_in_worker, fn, t) for t in tasks]
+            for fut, task in zip(pending, tasks):
                 try:
                     r = fut.result()
-                except StateshiftError:
+                except (StateshiftError, BrokenProcessPool) as exc:
                     for other in pending:
                         other.cancel()
-                    raise
+                    if not isinstance(exc, BrokenProcessPool):
+                        raise
+                    # the executor's own list of its workers (no public one): their exit codes
+                    # are read once the pool has joined them, on the way out of this block
+                    died = (task, list((getattr(pool, "_processes", None) or {}).values()))
+                    break
                 on_done(r)
                 results.append(r)
     finally:
         workers.stop_soon()  # its exit overlaps the command's next steps; stop_workers waits for it
+    if died is not None:
+        raise SystemFailure(_worker_death(*died))
     return results
+
+
+def run_task(fn: Callable[[Any], Any], task: Any) -> Any:
+    """``fn(task)``, with an operating-system error that no step turned into a one-line error
+    (a full scratch disk met where nobody expected one) made one, naming the file and the
+    partition (``task.where``)."""
+    try:
+        return fn(task)
+    except OSError as exc:
+        if exc.filename is None:
+            raise os_failure(exc, "move this store partition", task.where) from exc
+        raise os_failure(exc, f"use this file while moving {task.where}") from exc
+
+
+def _run_in_worker(fn: Callable[[Any], Any], task: Any) -> Any:
+    faults.reached("worker-task")
+    return run_task(fn, task)
+
+
+def _worker_death(task: Any, processes: list[Any]) -> str:
+    """The message for a pool whose worker died: how (from the workers' exit codes, those the
+    pool ended itself with SIGTERM after the death left out) and the first partition not done.
+    The scratch folders of the workers that are gone are removed here (they could not)."""
+    import signal
+
+    how = "ended abruptly"
+    try:
+        ended = [(p.pid, p.exitcode) for p in processes]
+    except Exception:  # noqa: BLE001 - the diagnosis is a courtesy; the failure stands without it
+        ended = []
+    scratch.remove_left_by({pid for pid, code in ended if code is not None})
+    for _, code in ended:
+        if code is None or code == -signal.SIGTERM:
+            continue
+        if code < 0:
+            name = signal.Signals(-code).name if -code in signal.valid_signals() else "unknown"
+            how = f"was killed by signal {-code} ({name}"
+            how += ", the signal of the kernel's out-of-memory killer)" if -code == signal.SIGKILL else ")"
+        else:
+            how = f"exited with status {code}"
+        break
+    return (
+        f"a worker process {how} while store partitions were being moved (the first not finished: {task.where}); "
+        "lower --jobs if memory ran short, then run the command again (convert and import: with --resume)"
+    )
 
 
 def stop_workers() -> None:

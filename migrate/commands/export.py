@@ -80,6 +80,10 @@ class ExportTask:
     listing: dict[str, Any] | None = field(default=None, compare=False)
     checkpoint_id: str | None = None  # id of the version (state checkpoint format 2)
 
+    @property
+    def where(self) -> str:  # what an error while exporting it names
+        return self.archive.describe(self.rel)
+
 
 @dataclass(frozen=True)
 class ExportResult:

@@ -92,6 +92,10 @@ class ImportTask:
     engine: str = "4.x"  # engine family the target is written for (checkpoint.engine)
     target_uid: str | None = None  # id to give the written version (state checkpoint format 2 target)
 
+    @property
+    def where(self) -> str:  # what an error while importing it names
+        return self.target.describe()
+
 
 @dataclass(frozen=True)
 class ImportResult:

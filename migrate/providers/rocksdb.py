@@ -57,7 +57,7 @@ from ..codecs.hadoop_crc import (
     make_crc,
     verify_crc,
 )
-from ..errors import CorruptInput, Unsupported
+from ..errors import CorruptInput, StateshiftError, Unsupported, library_failure, os_failure
 from ..storage import Entry
 from .base import (
     COLUMN_FAMILIES,
@@ -431,8 +431,12 @@ class RocksDBProvider(Provider):
         ssts = self._shared(store, SST_DIR, meta.sst_files, where)
         logs = self._shared(store, LOG_DIR, meta.log_files, where)
         for name, data in members.items():
-            with open(os.path.join(db_dir, name), "wb") as f:
-                f.write(data)
+            path = os.path.join(db_dir, name)
+            try:
+                with open(path, "wb") as f:
+                    f.write(data)
+            except OSError as exc:
+                raise os_failure(exc, "write this file", path) from exc
         linkable = [link] * len(ssts) + [False] * len(logs)  # write-ahead logs are always copied
         for shared, wf, linked in zip(meta.sst_files + meta.log_files, ssts + logs, linkable):
             local = os.path.join(db_dir, shared.local_name)
@@ -467,9 +471,10 @@ class RocksDBProvider(Provider):
                 replay.apply(records)
             db.flush()
         except Exception as exc:
-            if isinstance(exc, (CorruptInput, Unsupported)):
+            if isinstance(exc, StateshiftError):
                 raise
-            raise CorruptInput(f"applying the changelogs failed: {exc}", store.describe(changelogs[-1])) from exc
+            where = store.describe(changelogs[-1])
+            raise library_failure(exc, "apply the changelogs", where) or CorruptInput(f"applying the changelogs failed: {exc}", where) from exc
         finally:
             db.close()
 

@@ -25,7 +25,7 @@ import pyarrow.compute as pc
 
 from .. import scratch
 from ..buffers import binary_args, plain_binary
-from ..errors import CorruptInput, Unsupported
+from ..errors import CorruptInput, Unsupported, library_failure, os_failure
 from .base import BATCH_ROWS
 from .rocksdb_keys import prefix_each
 
@@ -109,8 +109,11 @@ def set_merge_delimiter(db_dir: str, delimiter: bytes) -> None:
             else line
             for line in text.split(b"\n")
         ]
-        with open(path, "wb") as f:
-            f.write(b"\n".join(lines))
+        try:
+            with open(path, "wb") as f:
+                f.write(b"\n".join(lines))
+        except OSError as exc:
+            raise os_failure(exc, "write this file", path) from exc
 
 
 # ------------------------------------------------------------------------ reading
@@ -124,7 +127,7 @@ def open_for_replay(db_dir: str, where: str):  # -> rocksdict.Rdict
     try:
         return Rdict(db_dir, options=options)
     except Exception as exc:  # rocksdict raises plain Exception with the RocksDB status text
-        raise CorruptInput(f"RocksDB refuses to open this version: {exc}", where) from exc
+        raise library_failure(exc, "open this version", where) or CorruptInput(f"RocksDB refuses to open this version: {exc}", where) from exc
 
 
 def iterate(
@@ -157,7 +160,7 @@ def iterate(
     try:
         db = Rdict(db_dir, options=options, access_type=AccessType.read_only())
     except Exception as exc:
-        raise CorruptInput(f"RocksDB refuses to open this version: {exc}", where) from exc
+        raise library_failure(exc, "open this version", where) or CorruptInput(f"RocksDB refuses to open this version: {exc}", where) from exc
     try:
         scan = ReadOptions()
         scan.fill_cache(False)
@@ -169,7 +172,7 @@ def iterate(
             try:
                 keys, values, odd = collect(rows, BATCH_ROWS, BATCH_BYTES, prefixes)
             except Exception as exc:  # rocksdict raises plain Exception with the RocksDB status text
-                raise CorruptInput(f"RocksDB read failed: {exc}", where) from exc
+                raise library_failure(exc, "read this version", where) or CorruptInput(f"RocksDB read failed: {exc}", where) from exc
             if len(keys):
                 last = prefixes[0] + keys[len(keys) - 1].as_py()
                 yield keys, values
@@ -251,7 +254,7 @@ def _check_scan_complete(db, scan, last: bytes | None, where: str) -> None:
         try:
             it.status()
         except Exception as exc:
-            raise CorruptInput(f"RocksDB read failed: {exc}", where) from exc
+            raise library_failure(exc, "read this version", where) or CorruptInput(f"RocksDB read failed: {exc}", where) from exc
         if more:
             raise CorruptInput("RocksDB scan ended early: keys remain after the last one it gave", where)
     finally:
@@ -378,11 +381,17 @@ def _write_run(
             raise CorruptInput("the rows to write carry the same key twice", where)
         parts = [(k, v)]
     path = place()
-    writer = SstFileWriter(options=options)
-    writer.open(path)
-    for k, v in parts:
-        put_rows(writer, k, v, prefixes)
-    writer.finish()
+    try:
+        writer = SstFileWriter(options=options)
+        writer.open(path)
+        for k, v in parts:
+            put_rows(writer, k, v, prefixes)
+        writer.finish()
+    except Exception as exc:  # rocksdict raises plain Exception with the RocksDB status text
+        failure = library_failure(exc, "write this version's table file", where)
+        if failure is None:
+            raise
+        raise failure from exc
     return path
 
 
@@ -419,6 +428,16 @@ def _batches_increasing(keys: list[pa.Array]) -> bool:
 
 def build_db(runs: list[str], rows: int, options, tmp: str, where: str) -> str:
     """Ingest the runs into a fresh RocksDB and take a checkpoint of it; return the checkpoint dir."""
+    try:
+        return _build_db(runs, rows, options, tmp, where)
+    except Exception as exc:  # rocksdict raises plain Exception with the RocksDB status text
+        failure = library_failure(exc, "build this version", where)
+        if failure is None:
+            raise
+        raise failure from exc
+
+
+def _build_db(runs: list[str], rows: int, options, tmp: str, where: str) -> str:
     from rocksdict import Checkpoint, IngestExternalFileOptions, Rdict
 
     # One table-opening thread instead of RocksDB's 16, started for every open (as in

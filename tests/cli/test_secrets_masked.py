@@ -63,12 +63,12 @@ def runs(s3_server, tmp_path_factory):
         "missing key path --json": (["verify", src, f"s3://{bucket}/ckpt/nothing-here", "--json", *opts], 3),
         "unreachable endpoint": (
             ["inspect", src, "-o", f"key={KEY_ID}", "-o", f"secret={SECRET}", "-o", f"client_kwargs.endpoint_url={dead}", *fast_fail],
-            2,
+            8,  # the storage failed the run
         ),
         "endpoint with user:password@": (
             ["inspect", src, "-o", f"key={KEY_ID}", "-o", f"secret={SECRET}",
              "-o", f"client_kwargs.endpoint_url=http://{KEY_ID}:{SECRET}@{s3.url.split('://', 1)[1]}", *fast_fail],
-            2,
+            8,
         ),
         "credentials in the s3 URL": (["inspect", f"s3://{KEY_ID}:{SECRET}@{bucket}/ckpt/src", "-o", f"client_kwargs.endpoint_url={s3.url}"], 2),
         "credentials in the target URL": (
@@ -77,7 +77,7 @@ def runs(s3_server, tmp_path_factory):
         ),
         "target bucket does not exist": (
             ["convert", src, f"s3://{missing_bucket}/ckpt", "--to", "hdfs", "-j", "1", *opts, *target_opt, *fast_fail],
-            2,
+            8,
         ),
     }
     results = []

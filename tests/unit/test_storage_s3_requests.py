@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import pytest
 
-from migrate.errors import CorruptInput, StateshiftError, UsageError
+from migrate.errors import CorruptInput, StateshiftError, SystemFailure
 from migrate.storage import open_location
 
 
@@ -182,7 +182,7 @@ def test_exists_on_objects_and_prefixes(s3_server, tree):
     assert loc.exists("a") and loc.exists("dir") and not loc.exists("missing")
 
 
-def test_an_unreachable_endpoint_is_one_masked_usage_error(s3_server, tree):
+def test_an_unreachable_endpoint_is_one_masked_system_failure(s3_server, tree):
     import socket
 
     with socket.socket() as s:  # a port nobody listens on
@@ -198,8 +198,9 @@ def test_an_unreachable_endpoint_is_one_masked_usage_error(s3_server, tree):
             "config_kwargs": {"retries": {"max_attempts": 1}, "connect_timeout": 1},
         },
     )
-    with pytest.raises(UsageError) as info:
+    with pytest.raises(SystemFailure) as info:  # exit 8: the storage failed the run
         loc.list_dir("")
+    assert info.value.exit_code == 8
     message = str(info.value)
     assert message.startswith(f"s3://{tree}/root: ")
     assert "\n" not in message

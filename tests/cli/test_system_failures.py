@@ -1,0 +1,150 @@
+"""When the machine fails a run (a worker process killed, a disk that takes no more bytes), the
+command ends with one line naming the file or partition and exit 8, leaves no half-written file
+and no scratch folder behind, the target stays unusable, and a rerun finishes the job.
+
+The disk failure is real, not simulated: the command runs under a file size limit
+(``RLIMIT_FSIZE``, with ``SIGXFSZ`` ignored, so a write past it fails with ``EFBIG`` as a full
+disk fails with ``ENOSPC``; both are the same ``OSError`` path in the tool). The worker death is
+the crash point ``worker-task`` (``migrate.faults``): the worker SIGKILLs itself as it starts its
+second partition, as the kernel's out-of-memory killer would kill it.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import resource
+import signal
+import subprocess
+import sys
+
+import pytest
+
+from benchmarks.generate import Params, generate
+from helpers import REPO, stateshift, tree_digest
+
+LIMIT = 24 << 10  # bytes a file may grow to under the size limit; every generated partition is larger
+
+
+@pytest.fixture(scope="module")
+def checkpoints(tmp_path_factory):
+    """Eight store partitions (enough for the workers) of about 100 KB each, in both layouts."""
+    root = tmp_path_factory.mktemp("system-failures")
+    out = {}
+    for layout in ("hdfs", "rocksdb"):
+        generate(Params(keys=16000, partitions=8, shape="narrow", layout=layout, deltas=2, seed=3), root / layout, jobs=1, quiet=True)
+        out[layout] = root / layout
+    return out
+
+
+def _run_limited(*args: str, scratch) -> subprocess.CompletedProcess:
+    """The command line in a fresh process whose files cannot grow past LIMIT bytes."""
+
+    def limit() -> None:
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)  # a write past the limit fails (EFBIG), no signal
+        resource.setrlimit(resource.RLIMIT_FSIZE, (LIMIT, LIMIT))
+
+    env = {**os.environ, "STATESHIFT_SCRATCH": str(scratch)}
+    env.pop("STATESHIFT_CRASH_AT", None)
+    return subprocess.run(
+        [sys.executable, "-m", "migrate", *args], capture_output=True, text=True, env=env, cwd=REPO, timeout=300, preexec_fn=limit
+    )
+
+
+def _one_error_line(proc: subprocess.CompletedProcess) -> str:
+    lines = [ln for ln in proc.stderr.splitlines() if ln.strip()]
+    assert len(lines) == 1 and lines[0].startswith("stateshift: error: "), proc.stderr
+    assert "internal error" not in proc.stderr and "Traceback" not in proc.stderr, proc.stderr
+    return lines[0]
+
+
+def _assert_unusable(dst) -> None:
+    with pytest.raises(json.JSONDecodeError):  # the engine parses `metadata` as JSON first
+        json.loads((dst / "metadata").read_text())
+    shown = stateshift("inspect", str(dst))
+    assert shown.returncode == 3 and "incomplete stateshift target" in shown.stderr, shown.stderr
+
+
+def _leftovers(*roots) -> list[str]:
+    """Temporary files of ours and scratch folders under these directories."""
+    found = []
+    for root in roots:
+        for path in root.rglob("*"):
+            if path.name.startswith(".stateshift-") or path.name.startswith("stateshift-"):
+                found.append(str(path))
+    return found
+
+
+@pytest.mark.parametrize("source, target", [("hdfs", "rocksdb"), ("rocksdb", "hdfs")])
+@pytest.mark.parametrize("jobs", ["1", "2"])
+def test_a_file_that_cannot_be_written_stops_the_convert_cleanly(tmp_path, checkpoints, source, target, jobs):
+    src = checkpoints[source]
+    before = tree_digest(src)
+    dst, scratch = tmp_path / "out", tmp_path / "scratch"
+    scratch.mkdir()
+    failed = _run_limited("convert", str(src), str(dst), "--to", target, "-j", jobs, "--quiet", scratch=scratch)
+    assert failed.returncode == 8, failed.stderr
+    line = _one_error_line(failed)
+    assert "EFBIG" in line or "File too large" in line, line
+    named = line[len("stateshift: error: "):].split(": ", 1)[0]
+    assert named.startswith((str(dst), str(scratch))), line  # the file (or the version) it could not write
+    if "File too large" in line and str(scratch) in line:  # RocksDB writing its table file in scratch
+        assert "STATESHIFT_SCRATCH" in line, line
+    _assert_unusable(dst)
+    assert _leftovers(dst, scratch) == []
+    assert tree_digest(src) == before
+
+    resumed = stateshift("convert", str(src), str(dst), "--to", target, "-j", jobs, "--resume")
+    assert resumed.returncode == 0, resumed.stderr
+    assert stateshift("verify", str(src), str(dst)).returncode == 0
+
+
+def test_an_archive_file_that_cannot_be_written_stops_the_export_cleanly(tmp_path, checkpoints):
+    src = checkpoints["hdfs"]
+    archive, scratch = tmp_path / "archive", tmp_path / "scratch"
+    scratch.mkdir()
+    failed = _run_limited("export", str(src), str(archive), "-j", "2", "--quiet", scratch=scratch)
+    assert failed.returncode == 8, failed.stderr
+    line = _one_error_line(failed)
+    assert f"{archive}/state/operator=0/store=default/partition=" in line and "part-0.parquet: could not write this file" in line, line
+    assert "EFBIG" in line, line
+    assert not (archive / "manifest.json").exists()  # the archive's commit point was never written
+    assert _leftovers(archive, scratch) == []
+    refused = stateshift("import", str(archive), str(tmp_path / "restored"), "--to", "hdfs")
+    assert refused.returncode == 3, refused.stderr
+
+    again = stateshift("export", str(src), str(archive), "--overwrite")
+    assert again.returncode == 0, again.stderr
+
+
+@pytest.mark.parametrize("target", ["rocksdb", "hdfs"])
+def test_a_killed_worker_is_named_and_the_run_resumes(tmp_path, checkpoints, target):
+    src = checkpoints["hdfs" if target == "rocksdb" else "rocksdb"]
+    before = tree_digest(src)
+    dst, scratch = tmp_path / "out", tmp_path / "scratch"
+    scratch.mkdir()
+    crashed = stateshift("convert", str(src), str(dst), "--to", target, "-j", "2", "--quiet",
+                         env={"STATESHIFT_CRASH_AT": "worker-task:2", "STATESHIFT_SCRATCH": str(scratch)})
+    assert crashed.returncode == 8, crashed.stderr
+    line = _one_error_line(crashed)
+    assert "a worker process was killed by signal 9 (SIGKILL" in line, line
+    assert f"the first not finished: {dst}/state/0/" in line and "--resume" in line, line
+    _assert_unusable(dst)
+    assert [p for p in _leftovers(scratch)] == []  # the dead workers' scratch folders were removed
+    assert tree_digest(src) == before
+
+    resumed = stateshift("convert", str(src), str(dst), "--to", target, "-j", "2", "--resume")
+    assert resumed.returncode == 0, resumed.stderr
+    assert stateshift("verify", str(src), str(dst)).returncode == 0
+
+
+def test_a_killed_worker_stops_an_export_without_its_manifest(tmp_path, checkpoints):
+    archive, scratch = tmp_path / "archive", tmp_path / "scratch"
+    scratch.mkdir()
+    crashed = stateshift("export", str(checkpoints["rocksdb"]), str(archive), "-j", "2", "--quiet",
+                         env={"STATESHIFT_CRASH_AT": "worker-task:2", "STATESHIFT_SCRATCH": str(scratch)})
+    assert crashed.returncode == 8, crashed.stderr
+    line = _one_error_line(crashed)
+    assert "killed by signal 9" in line and f"{archive}/state/operator=0/" in line, line
+    assert not (archive / "manifest.json").exists()
+    assert _leftovers(scratch) == []
