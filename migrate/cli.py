@@ -12,7 +12,8 @@ Exit codes (documented in the README):
   7  the source looks like a running query
   8  the machine or the storage failed the run (a full or read-only disk, an I/O or network error,
      access denied, a worker process killed); a target is left marked incomplete
-  130 interrupted
+  130 interrupted (Ctrl-C)
+  143 terminated (SIGTERM)
 """
 
 from __future__ import annotations
@@ -20,6 +21,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import signal
 import sys
 from collections.abc import MutableMapping
 from typing import Any
@@ -213,8 +215,33 @@ def _mallopt_thresholds() -> None:
     libc.mallopt(-1, MALLOC_TRIM_THRESHOLD)
 
 
+class Terminated(KeyboardInterrupt):
+    """SIGTERM (``kill PID``, a container or job runner stopping the command), raised where the
+    command is, so it stops as on Ctrl-C: its workers are ended and the target stays marked
+    incomplete. Python's default would end this process alone, its workers left behind."""
+
+
+def _on_sigterm(signum: int, frame: Any) -> None:
+    raise Terminated
+
+
 def main(argv: list[str] | None = None) -> int:
     argv = sys.argv[1:] if argv is None else list(argv)
+    try:
+        previous = signal.signal(signal.SIGTERM, _on_sigterm)
+    except ValueError:  # not the main thread (the command run inside another program): its own handling stands
+        previous = None
+    try:
+        return _command_line(argv)
+    except Terminated:  # before or after the command's own handling (starting, stopping the workers)
+        print("stateshift: terminated (SIGTERM); the target (if any) is left marked incomplete", file=sys.stderr)
+        return 128 + signal.SIGTERM
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
+
+
+def _command_line(argv: list[str]) -> int:
     prefer_arrow_pool()  # before the fork server starts and before pyarrow is imported
     no_blas_pool()  # likewise, before numpy is imported
     fixed_malloc = keep_freed_memory(this_process=False)  # before the fork server starts
@@ -256,7 +283,10 @@ def _main(argv: list[str]) -> int:
         except OSError:
             pass
         return 0
-    except KeyboardInterrupt:
+    except KeyboardInterrupt as exc:
+        if isinstance(exc, Terminated):
+            print("stateshift: terminated (SIGTERM); the target (if any) is left marked incomplete", file=sys.stderr)
+            return 128 + signal.SIGTERM
         print("stateshift: interrupted; the target (if any) is left marked incomplete", file=sys.stderr)
         return 130
     except OSError as exc:  # the machine failed a step that names no file of its own

@@ -317,24 +317,33 @@ def run_tasks(
             results.append(r)
         return results
     died: tuple[PartitionTask, list[Any]] | None = None
+    stopped: list[Any] = []  # the workers an interruption ended
     try:
         with ProcessPoolExecutor(max_workers=jobs, mp_context=workers.context()) as pool:
             pending = [pool.submit(_run_in_worker, fn, t) for t in tasks]
-            for fut, task in zip(pending, tasks):
-                try:
-                    r = fut.result()
-                except (StateshiftError, BrokenProcessPool) as exc:
-                    for other in pending:
-                        other.cancel()
-                    if not isinstance(exc, BrokenProcessPool):
-                        raise
-                    # the executor's own list of its workers (no public one): their exit codes
-                    # are read once the pool has joined them, on the way out of this block
-                    died = (task, list((getattr(pool, "_processes", None) or {}).values()))
-                    break
-                on_done(r)
-                results.append(r)
+            try:
+                for fut, task in zip(pending, tasks):
+                    try:
+                        r = fut.result()
+                    except (StateshiftError, BrokenProcessPool) as exc:
+                        for other in pending:
+                            other.cancel()
+                        if not isinstance(exc, BrokenProcessPool):
+                            raise
+                        # their exit codes are read once the pool has joined them, on the way
+                        # out of this block
+                        died = (task, _pool_processes(pool))
+                        break
+                    on_done(r)
+                    results.append(r)
+            except Exception:
+                raise  # an error of ours: the partitions in flight finish, the rest are cancelled
+            except BaseException:
+                stopped = _stop_pool(pending, pool)  # interrupted (Ctrl-C, SIGTERM): the workers stop now
+                raise
     finally:
+        if stopped:  # joined by the pool on the way out of its block: their exit codes are known
+            scratch.remove_left_by({p.pid for p in stopped if p.exitcode is not None})
         workers.stop_soon()  # its exit overlaps the command's next steps; stop_workers waits for it
     if died is not None:
         raise SystemFailure(_worker_death(*died))
@@ -356,6 +365,29 @@ def run_task(fn: Callable[[Any], Any], task: Any) -> Any:
 def _run_in_worker(fn: Callable[[Any], Any], task: Any) -> Any:
     faults.reached("worker-task")
     return run_task(fn, task)
+
+
+def _pool_processes(pool: ProcessPoolExecutor) -> list[Any]:
+    """The pool's worker processes (the executor's own list: there is no public one)."""
+    return list((getattr(pool, "_processes", None) or {}).values())
+
+
+def _stop_pool(pending: list[Any], pool: ProcessPoolExecutor) -> list[Any]:
+    """Cancel every task not started and end the workers at once (SIGTERM), for a command that was
+    interrupted: a worker only gets the signal the command got when it went to the whole process
+    group (Ctrl-C does, ``kill PID`` does not), and a pool left waiting for its tasks would keep
+    writing into the target after the command is gone. Returns the workers. They are not joined
+    here: the pool's own thread joins them as the pool shuts down (two threads waiting for one
+    process through the fork server would read its exit status from one pipe)."""
+    for fut in pending:
+        fut.cancel()
+    processes = _pool_processes(pool)
+    for p in processes:
+        try:
+            p.terminate()
+        except Exception:  # noqa: BLE001 - one already gone
+            pass
+    return processes
 
 
 def _worker_death(task: Any, processes: list[Any]) -> str:

@@ -148,3 +148,86 @@ def test_a_killed_worker_stops_an_export_without_its_manifest(tmp_path, checkpoi
     assert "killed by signal 9" in line and f"{archive}/state/operator=0/" in line, line
     assert not (archive / "manifest.json").exists()
     assert _leftovers(scratch) == []
+
+
+def _descendants(pid: int) -> set[int]:
+    """Every process under ``pid`` (read from /proc: its fork server and the server's workers)."""
+    parents: dict[int, int] = {}
+    for entry in os.listdir("/proc"):
+        if entry.isdigit():
+            try:
+                with open(f"/proc/{entry}/stat") as f:
+                    fields = f.read().rsplit(")", 1)[1].split()
+            except OSError:
+                continue
+            parents[int(entry)] = int(fields[1])
+    found, frontier = set(), {pid}
+    while frontier:
+        frontier = {child for child, parent in parents.items() if parent in frontier} - found
+        found |= frontier
+    return found
+
+
+def _alive(pids: set[int]) -> set[int]:
+    alive = set()
+    for pid in pids:
+        try:
+            with open(f"/proc/{pid}/stat") as f:
+                if f.read().rsplit(")", 1)[1].split()[0] != "Z":  # a zombie has ended
+                    alive.add(pid)
+        except OSError:
+            pass
+    return alive
+
+
+def _wait_for(predicate, timeout: float = 60.0) -> bool:
+    import time
+
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        if predicate():
+            return True
+        time.sleep(0.05)
+    return False
+
+
+def _start_stalled_convert(src, dst, scratch) -> tuple[subprocess.Popen, set[int]]:
+    """A convert whose two workers each stall (sleep) in their first partition; returns the
+    process and, once both workers are there, the fork server and the workers."""
+    env = {**os.environ, "STATESHIFT_CRASH_AT": "worker-task:1:stall", "STATESHIFT_SCRATCH": str(scratch)}
+    proc = subprocess.Popen([sys.executable, "-m", "migrate", "convert", str(src), str(dst), "--to", "rocksdb", "-j", "2", "--quiet"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env, cwd=REPO)
+    # the fork server, the resource tracker and two workers under the server
+    assert _wait_for(lambda: len(_descendants(proc.pid)) >= 4), proc.pid
+    return proc, _descendants(proc.pid)
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
+def test_sigterm_ends_the_workers_with_the_command(tmp_path, checkpoints):
+    dst, scratch = tmp_path / "out", tmp_path / "scratch"
+    scratch.mkdir()
+    proc, tree = _start_stalled_convert(checkpoints["hdfs"], dst, scratch)
+    proc.send_signal(signal.SIGTERM)  # to the command alone, as `kill PID` or a job runner sends it
+    out, err = proc.communicate(timeout=60)
+    assert proc.returncode == 128 + signal.SIGTERM, err
+    assert err.strip().splitlines()[-1] == "stateshift: terminated (SIGTERM); the target (if any) is left marked incomplete", err
+    assert _wait_for(lambda: not _alive(tree), 10), f"left running: {_alive(tree)}"
+    _assert_unusable(dst)
+    assert _leftovers(scratch) == []  # the workers' scratch folders went with them
+    resumed = stateshift("convert", str(checkpoints["hdfs"]), str(dst), "--to", "rocksdb", "-j", "2", "--resume")
+    assert resumed.returncode == 0, resumed.stderr
+    assert stateshift("verify", str(checkpoints["hdfs"]), str(dst)).returncode == 0
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc; the tie to the command is Linux's")
+def test_a_command_killed_outright_takes_its_fork_server_and_workers_with_it(tmp_path, checkpoints):
+    dst, scratch = tmp_path / "out", tmp_path / "scratch"
+    scratch.mkdir()
+    proc, tree = _start_stalled_convert(checkpoints["hdfs"], dst, scratch)
+    proc.kill()  # SIGKILL: nothing of the command runs, as when the out-of-memory killer picks it
+    proc.communicate(timeout=60)
+    # before the tie, the server and its two workers waited for each other for ever
+    assert _wait_for(lambda: not _alive(tree), 10), f"left running: {_alive(tree)}"
+    _assert_unusable(dst)
+    resumed = stateshift("convert", str(checkpoints["hdfs"]), str(dst), "--to", "rocksdb", "-j", "2", "--resume")
+    assert resumed.returncode == 0, resumed.stderr
