@@ -8,6 +8,7 @@ and compare. Tasks are plain picklable data so ``--jobs`` can run them in worker
 from __future__ import annotations
 
 import argparse
+import contextlib
 import os
 from collections.abc import Callable, Iterable
 from concurrent.futures import ProcessPoolExecutor
@@ -144,12 +145,15 @@ def run_partition(task: PartitionTask) -> PartitionResult:
     source_bytes = sum(f.size for f in src.source_files(task.source, task.version, rctx))
     props = src.store_properties(task.source, task.version, rctx)  # what the rows cannot carry
     dst.check_writable(props, task.source.describe())
-    stream = DigestingIterator(src.read(task.source, task.version, rctx))
     wctx = WriteContext(
         conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, write_crc=task.write_crc, extra=props,
         checkpoint_id=task.target_uid, engine=task.engine,
     )
-    written = dst.write(task.target, task.version, stream, wctx)
+    # closed when the write fails halfway: a reader's scratch folder goes with it (a worker ends
+    # with os._exit, so a reader left suspended in a failed task never ran its clean-up)
+    with contextlib.closing(src.read(task.source, task.version, rctx)) as rows:
+        stream = DigestingIterator(rows)
+        written = dst.write(task.target, task.version, stream, wctx)
     rctx_back = ReadContext(conf=task.write_conf, num_cols_prefix_key=task.num_cols_prefix_key, extra=props, checkpoint_id=task.target_uid)
     back = digest_batches(dst.read(task.target, task.version, rctx_back))
     return PartitionResult(

@@ -18,6 +18,7 @@ The source is opened read-only and never written.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import dataclasses
 import re
 from collections.abc import Callable
@@ -118,7 +119,10 @@ def run_export_task(task: ExportTask) -> ExportResult:
     decoder = decoder_for(task.schema_bytes, task.schema_where)
     props = p.store_properties(task.source, task.version, ctx)  # kept with the rows, for import
     metadata = {**task.metadata, **{f"{PROPERTY_PREFIX}{k}": v for k, v in props.items()}}
-    written = write_data_file(task.archive, task.rel, p.read(task.source, task.version, ctx), decoder, metadata)
+    # closed when the write fails halfway: a reader's scratch folder goes with it (a worker ends
+    # with os._exit, so a reader left suspended in a failed task never ran its clean-up)
+    with contextlib.closing(p.read(task.source, task.version, ctx)) as rows:
+        written = write_data_file(task.archive, task.rel, rows, decoder, metadata)
     return ExportResult(task.source.operator_id, task.source.store_name, task.source.partition, written, source_bytes)
 
 

@@ -99,8 +99,9 @@ def test_a_file_that_cannot_be_written_stops_the_convert_cleanly(tmp_path, check
     assert stateshift("verify", str(src), str(dst)).returncode == 0
 
 
-def test_an_archive_file_that_cannot_be_written_stops_the_export_cleanly(tmp_path, checkpoints):
-    src = checkpoints["hdfs"]
+@pytest.mark.parametrize("source", ["hdfs", "rocksdb"])  # a RocksDB source is read through scratch folders
+def test_an_archive_file_that_cannot_be_written_stops_the_export_cleanly(tmp_path, checkpoints, source):
+    src = checkpoints[source]
     archive, scratch = tmp_path / "archive", tmp_path / "scratch"
     scratch.mkdir()
     failed = _run_limited("export", str(src), str(archive), "-j", "2", "--quiet", scratch=scratch)
