@@ -329,13 +329,14 @@ def run_tasks(
                 for fut, task in zip(pending, tasks):
                     try:
                         r = fut.result()
-                    except (StateshiftError, BrokenProcessPool) as exc:
+                    except StateshiftError:
                         for other in pending:
                             other.cancel()
-                        if not isinstance(exc, BrokenProcessPool):
-                            raise
-                        # their exit codes are read once the pool has joined them, on the way
-                        # out of this block
+                        raise
+                    except BrokenProcessPool:
+                        # the pool fails every other task itself (a future cancelled here first
+                        # would make its thread raise InvalidStateError); the workers' exit codes
+                        # are read once the pool has joined them, on the way out of this block
                         died = (task, _pool_processes(pool))
                         break
                     on_done(r)
@@ -343,7 +344,7 @@ def run_tasks(
             except Exception:
                 raise  # an error of ours: the partitions in flight finish, the rest are cancelled
             except BaseException:
-                stopped = _stop_pool(pending, pool)  # interrupted (Ctrl-C, SIGTERM): the workers stop now
+                stopped = _stop_pool(pool)  # interrupted (Ctrl-C, SIGTERM): the workers stop now
                 raise
     finally:
         if stopped:  # joined by the pool on the way out of its block: their exit codes are known
@@ -376,15 +377,15 @@ def _pool_processes(pool: ProcessPoolExecutor) -> list[Any]:
     return list((getattr(pool, "_processes", None) or {}).values())
 
 
-def _stop_pool(pending: list[Any], pool: ProcessPoolExecutor) -> list[Any]:
-    """Cancel every task not started and end the workers at once (SIGTERM), for a command that was
-    interrupted: a worker only gets the signal the command got when it went to the whole process
-    group (Ctrl-C does, ``kill PID`` does not), and a pool left waiting for its tasks would keep
-    writing into the target after the command is gone. Returns the workers. They are not joined
-    here: the pool's own thread joins them as the pool shuts down (two threads waiting for one
-    process through the fork server would read its exit status from one pipe)."""
-    for fut in pending:
-        fut.cancel()
+def _stop_pool(pool: ProcessPoolExecutor) -> list[Any]:
+    """End the workers at once (SIGTERM), for a command that was interrupted: a worker only gets
+    the signal the command got when it went to the whole process group (Ctrl-C does, ``kill PID``
+    does not), and a pool left waiting for its tasks would keep writing into the target after the
+    command is gone. The pool then fails every task left itself (cancelling them here first made
+    its thread raise InvalidStateError on a cancelled future: CPython 3.11, seen as a traceback
+    before the command's one line). Returns the workers. They are not joined here: the pool's own
+    thread joins them as the pool shuts down (two threads waiting for one process through the fork
+    server would read its exit status from one pipe)."""
     processes = _pool_processes(pool)
     for p in processes:
         try:
