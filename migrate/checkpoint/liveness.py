@@ -48,11 +48,14 @@ def running_signs(ckpt: Checkpoint, now: float | None = None, window: float = RE
 
 
 def changed_since(ckpt: Checkpoint) -> list[str]:
-    """Log entries that appeared after the model was read."""
+    """Log entries that appeared or disappeared after the model was read (a running query adds
+    entries and purges old ones)."""
     signs = []
     for log in ("offsets", "commits"):
         before = {n for n in ckpt.log_listings.get(log, {}) if n.isdigit()}
         after = {n for n in ckpt.location.list_dir(log, refresh=True) if n.isdigit()}
         for name in sorted(after - before, key=int):
             signs.append(f"{log}/{name} appeared while stateshift was reading")
+        for name in sorted(before - after, key=int):
+            signs.append(f"{log}/{name} disappeared while stateshift was reading")
     return signs

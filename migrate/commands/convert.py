@@ -22,6 +22,7 @@ from typing import Any
 from .. import faults
 from ..checkpoint.engine import nullable_value_schema
 from ..checkpoint.files import (
+    CopyFile,
     conf_changes,
     is_operator_metadata_v2,
     point_schema_paths_at,
@@ -174,11 +175,14 @@ def convert(
     target_class = class_name_for(to)
     target = provider_for(target_class)
     ckpt.provider  # an unknown source provider class raises Unsupported here
-    check_schemas(ckpt, verbatim_files(ckpt)[0])
+    # listed once, now: publish copies exactly these, so a file that vanishes meanwhile is an error,
+    # not a file quietly left out of a target that looks complete
+    files = verbatim_files(ckpt)
+    check_schemas(ckpt, files[0])
     refuse_unwritable(ckpt, target_class)
     check_chain_against_commits(ckpt)  # format 2: the lineage agrees with the commit log
     fmt = target_format(checkpoint_format(ckpt), target.name, checkpoint_format_to, dst.display)
-    source_engine, engine, schema_rewrites = engine_plan(ckpt, engine_version, schema_files(verbatim_files(ckpt)[0]))
+    source_engine, engine, schema_rewrites = engine_plan(ckpt, engine_version, schema_files(files[0]))
     refuse_format_for_engine(fmt, engine, dst.display)
     report = ConvertReport(
         source=src.display,
@@ -221,7 +225,7 @@ def convert(
         refuse_if_running(ckpt, after_read=True)
     faults.reached("before-logs")
     publish(ckpt, dst, target_class, report, commits=commits_for_target(ckpt.commits, ckpt.latest_batch, fmt, written_uids(ckpt, tasks)),
-            schema_rewrites=schema_rewrites)
+            schema_rewrites=schema_rewrites, files=files)
     journal.finish(dst)
     return report
 
@@ -312,14 +316,17 @@ def target_names(provider: str, version: int) -> list[str]:
 def publish(
     ckpt: Checkpoint, dst: Location, target_class: str, report: ConvertReport, query_metadata: bytes | None = None,
     commits: dict[str, bytes] | None = None, schema_rewrites: list[str] | tuple[str, ...] = (),
+    *,
+    files: tuple[list[CopyFile], list[CopyFile]],
 ) -> None:
     """Copy the verbatim files and write the logs; the real ``metadata`` goes last. ``commits``:
     commits entries rewritten for the target's state checkpoint format (checkpoint/uids.py);
     ``schema_rewrites``: schema files whose value schema is made nullable for the target engine
-    (``checkpoint.engine.upgrade_schema_rewrites``)."""
+    (``checkpoint.engine.upgrade_schema_rewrites``); ``files``: the verbatim files
+    (``verbatim_files``) as listed when the run was planned."""
     src = ckpt.location
     commits = commits or {}
-    early, late = verbatim_files(ckpt)
+    early, late = files
     moved = {f.rel for f in early if is_operator_metadata_v2(f.rel)}  # schema paths point at dst
     relaxed = set(schema_rewrites)
     for f in early:
