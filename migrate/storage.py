@@ -48,6 +48,8 @@ from .errors import CorruptInput, StateshiftError, SystemFailure, UsageError, os
 # endpoint, access denied, throttling, a full or read-only local disk): the machine or the storage
 # failed the run (exit 8), which a wrong option value can cause too.
 StorageFailure = SystemFailure
+#: the name every temporary file of ours starts with (renamed into place once complete)
+TEMP_PREFIX = ".stateshift-"
 #: errors only writing a file gives: a copy that fails with one failed on the side it writes
 _WRITE_SIDE = frozenset((errno.ENOSPC, errno.EDQUOT, errno.EFBIG, errno.EROFS))
 
@@ -462,7 +464,7 @@ class Location:
             if self.is_local:
                 directory = os.path.dirname(target)
                 os.makedirs(directory, exist_ok=True)
-                tmp = os.path.join(directory, f".stateshift-{uuid.uuid4().hex}.tmp")
+                tmp = os.path.join(directory, f"{TEMP_PREFIX}{uuid.uuid4().hex}.tmp")
                 with _removed_on_error(tmp):
                     with open(tmp, "wb") as f:
                         half = len(data) // 2
@@ -492,7 +494,7 @@ class Location:
             if self.is_local:
                 directory = os.path.dirname(target)
                 os.makedirs(directory, exist_ok=True)
-                tmp = os.path.join(directory, f".stateshift-{uuid.uuid4().hex}.tmp")
+                tmp = os.path.join(directory, f"{TEMP_PREFIX}{uuid.uuid4().hex}.tmp")
                 with _removed_on_error(tmp):
                     with open(local_path, "rb") as src, open(tmp, "wb") as dst:
                         while chunk := src.read(1 << 20):
@@ -518,7 +520,7 @@ class Location:
             os.makedirs(directory, exist_ok=True)
         except Exception as exc:  # noqa: BLE001
             self._fail(exc, rel_dir, "make this directory")
-        return os.path.join(directory, f".stateshift-{uuid.uuid4().hex}.tmp")
+        return os.path.join(directory, f"{TEMP_PREFIX}{uuid.uuid4().hex}.tmp")
 
     def commit_temp(self, tmp: str, rel: str) -> None:
         """Sync a file written at a name from :meth:`temp_in` and give it the name ``rel`` (one

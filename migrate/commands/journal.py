@@ -25,7 +25,7 @@ from ..checkpoint.model import INCOMPLETE_PREFIX, JOURNAL_DIR
 from ..digest import Digest
 from ..errors import CorruptInput, UnsafeTarget
 from ..providers.base import WrittenFile
-from ..storage import Location
+from ..storage import TEMP_PREFIX, Location
 from .common import prepare_target
 
 T = TypeVar("T")
@@ -114,6 +114,10 @@ def run_with_journal(
     back from the target with the recorded digest; every other partition's target directory is
     removed (anything half-written goes) and the task runs again.
     """
+    if resume and not [name for name in dst.list_dir("") if not name.startswith(TEMP_PREFIX)]:
+        # nothing of an earlier run but, at most, the temporary file of its first write (a run
+        # that failed before its placeholder metadata was written): this run starts it afresh
+        resume, overwrite = False, True
     if resume:
         state = resume_journal(dst, identity)
     else:

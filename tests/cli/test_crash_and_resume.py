@@ -38,10 +38,8 @@ def test_killed_convert_is_unusable_then_resumes(tmp_path, point, target):
     assert shown.returncode != 0
     assert "incomplete stateshift target" in shown.stderr or not (dst / "metadata").exists()
 
-    # (2) --resume finishes the job (or a plain rerun when nothing was started yet)
+    # (2) --resume finishes the job (and starts it when the run was killed inside its first file)
     resumed = stateshift("convert", str(src), str(dst), "--to", target, "-j", "1", "--force", "--resume")
-    if resumed.returncode != 0 and "no metadata" in resumed.stderr:
-        resumed = stateshift("convert", str(src), str(dst), "--to", target, "-j", "1", "--force", "--overwrite")
     assert resumed.returncode == 0, resumed.stderr
     assert not (dst / "_stateshift").exists()
     assert json.loads((dst / "metadata").read_text())["id"]
@@ -86,6 +84,26 @@ def test_resume_refuses_a_finished_or_foreign_target(tmp_path):
     assert crashed.returncode == -9
     foreign = stateshift("convert", str(other), str(dst2), "--to", "rocksdb", "--force", "--resume")
     assert foreign.returncode == 6 and "different source" in foreign.stderr
+    # a directory of something else, without the placeholder metadata, is no run of ours to finish
+    unrelated = tmp_path / "unrelated"
+    unrelated.mkdir()
+    (unrelated / "notes.txt").write_text("keep me")
+    refused = stateshift("convert", str(src), str(unrelated), "--to", "rocksdb", "--force", "--resume")
+    assert refused.returncode == 6 and "no metadata" in refused.stderr
+    assert [p.name for p in unrelated.iterdir()] == ["notes.txt"]
+
+
+@pytest.mark.parametrize("made", [False, True])
+def test_resume_of_a_run_that_wrote_nothing_starts_it(tmp_path, made):
+    """A run that failed before its first file (say, the target's file system was read-only)
+    leaves nothing to finish; --resume, as its message advised, then does the whole run."""
+    src = demo_copy("greenhouse_totals_hdfs", tmp_path)
+    dst = tmp_path / "out"
+    if made:
+        dst.mkdir()
+    resumed = stateshift("convert", str(src), str(dst), "--to", "rocksdb", "--force", "--resume")
+    assert resumed.returncode == 0, resumed.stderr
+    assert stateshift("verify", str(src), str(dst)).returncode == 0
 
 
 @pytest.mark.parametrize("point", ["file-written:3", "partition-written:1", "mid-file:6", "before-logs:1", "before-metadata:1"])
