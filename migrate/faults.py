@@ -4,9 +4,9 @@
 ``<event>`` (events: ``partition-written``, ``file-written``, ``mid-file``, ``before-logs``,
 ``before-metadata``, and ``worker-task``: a worker process starting a store partition, counted
 per worker). ``<event>:<n>:stall`` makes it sleep there instead (for an hour), for tests that
-signal a command while its workers are busy. Nothing happens when the variable is unset. This is how the tests prove that
-a process killed at any of these points leaves no usable-looking target and that ``--resume``
-finishes the job.
+signal a command while its workers are busy. Nothing happens when the variable is unset. This is
+how the tests prove that a process killed at any of these points leaves no usable-looking target
+and that ``--resume`` finishes the job.
 """
 
 from __future__ import annotations

@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import contextlib
 import os
+import signal
 from collections.abc import Callable, Iterable
 from concurrent.futures import ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
@@ -399,8 +400,6 @@ def _worker_death(task: Any, processes: list[Any]) -> str:
     """The message for a pool whose worker died: how (from the workers' exit codes, those the
     pool ended itself with SIGTERM after the death left out) and the first partition not done.
     The scratch folders of the workers that are gone are removed here (they could not)."""
-    import signal
-
     how = "ended abruptly"
     try:
         ended = [(p.pid, p.exitcode) for p in processes]
