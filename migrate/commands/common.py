@@ -359,13 +359,18 @@ def run_tasks(
 def run_task(fn: Callable[[Any], Any], task: Any) -> Any:
     """``fn(task)``, with an operating-system error that no step turned into a one-line error
     (a full scratch disk met where nobody expected one) made one, naming the file and the
-    partition (``task.where``)."""
+    partition (``task.where``), and so is running out of memory."""
     try:
         return fn(task)
     except OSError as exc:
         if exc.filename is None:
             raise os_failure(exc, "move this store partition", task.where) from exc
         raise os_failure(exc, f"use this file while moving {task.where}") from exc
+    except MemoryError as exc:  # Python's, or Arrow's (ArrowMemoryError is one): a limit on this process
+        raise SystemFailure(
+            "ran out of memory moving this store partition (a memory limit on the process, or the machine's); "
+            "lower --jobs, then run the command again", task.where,
+        ) from exc
 
 
 def _run_in_worker(fn: Callable[[Any], Any], task: Any) -> Any:

@@ -113,3 +113,17 @@ def test_the_scratch_folders_of_dead_workers_are_removed_and_no_others(tmp_path,
     assert scratch.remove_left_by({999999, os.getpid()}) == [str(dead)]
     assert sorted(p.name for p in tmp_path.iterdir()) == sorted(p.name for p in (alive, mine, foreign))
     assert scratch.remove_left_by(set()) == []
+
+
+def test_running_out_of_memory_is_named_with_its_partition():
+    import pyarrow as pa
+
+    for error in (MemoryError(), pa.lib.ArrowMemoryError("malloc of size 1073741824 failed")):
+        def exhausts(task, error=error):
+            raise error
+
+        with pytest.raises(SystemFailure) as info:
+            run_task(exhausts, _Task())
+        assert info.value.exit_code == 8
+        assert str(info.value).startswith("/t/state/0/5: ran out of memory moving this store partition")
+        assert "lower --jobs" in str(info.value)
