@@ -15,6 +15,7 @@ decides for certain (``commands.common.start_workers_early``) and stops a server
 
 from __future__ import annotations
 
+import math
 import os
 import threading
 from multiprocessing import get_all_start_methods, get_context
@@ -178,8 +179,74 @@ def likely_parallel(argv: list[str]) -> bool:
     return False
 
 
+CGROUP_ROOT = "/sys/fs/cgroup"
+
+
+def default_jobs() -> int:
+    """The ``--jobs`` default: the CPUs this process may run on (its affinity mask, which a
+    cpuset or ``taskset`` narrows), no more than its cgroup's CPU quota allows, rounded up (a
+    container started with ``--cpus 2`` on a 64-core host sees 64 cores in ``os.cpu_count()``,
+    and 64 workers each holding a partition would overrun its memory)."""
+    try:
+        cpus = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):  # not on Linux
+        cpus = os.cpu_count() or 1
+    quota = cgroup_cpu_quota()
+    if quota is not None:
+        cpus = min(cpus, max(1, math.ceil(quota)))
+    return max(1, cpus)
+
+
+def cgroup_cpu_quota(root: str = CGROUP_ROOT, own: str = "/proc/self/cgroup") -> float | None:
+    """CPUs' worth of time this process's cgroup may use per period (None: no quota, or no
+    cgroup file to say): cgroup v2's ``cpu.max`` ("<quota> <period>" or "max <period>"), else v1's
+    ``cpu.cfs_quota_us`` / ``cpu.cfs_period_us`` (-1: none); the process's own cgroup first
+    (``/proc/self/cgroup``), then the root a container usually sees as its own."""
+    v2 = v1 = "/"
+    try:
+        with open(own) as f:
+            for line in f:
+                hierarchy, _, rest = line.strip().partition(":")
+                controllers, _, path = rest.partition(":")
+                if hierarchy == "0" and controllers == "":
+                    v2 = path or "/"
+                elif "cpu" in controllers.split(","):
+                    v1 = path or "/"
+    except OSError:
+        pass
+    for folder in dict.fromkeys((v2, "/")):
+        text = _read_text(os.path.join(root, folder.lstrip("/"), "cpu.max"))
+        if text:
+            quota, _, period = text.partition(" ")
+            if quota == "max":
+                return None
+            return _ratio(quota, period)
+    for folder in dict.fromkeys((v1, "/")):
+        base = os.path.join(root, "cpu", folder.lstrip("/"))
+        quota = _read_text(os.path.join(base, "cpu.cfs_quota_us"))
+        if quota:
+            return None if quota.strip() == "-1" else _ratio(quota, _read_text(os.path.join(base, "cpu.cfs_period_us")) or "")
+    return None
+
+
+def _read_text(path: str) -> str | None:
+    try:
+        with open(path) as f:
+            return f.read().strip()
+    except OSError:
+        return None
+
+
+def _ratio(quota: str, period: str) -> float | None:
+    try:
+        q, p = int(quota), int(period)
+    except ValueError:
+        return None
+    return q / p if q > 0 and p > 0 else None
+
+
 def _jobs(args: list[str]) -> int:
-    jobs = os.cpu_count() or 1  # the --jobs default (commands.common.add_jobs_argument)
+    jobs = default_jobs()  # the --jobs default (commands.common.add_jobs_argument)
     for i, a in enumerate(args):
         value = None
         if a in ("-j", "--jobs") and i + 1 < len(args):

@@ -222,7 +222,10 @@ def add_checkpoint_format_argument(parser: argparse.ArgumentParser) -> None:
 
 
 def add_jobs_argument(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--jobs", "-j", type=int, default=os.cpu_count() or 1, help="store partitions in parallel (default: cores)")
+    parser.add_argument(
+        "--jobs", "-j", type=int, default=workers.default_jobs(),
+        help="store partitions in parallel (default: the CPUs this process may use, within a container's CPU quota)",
+    )
 
 
 def checked_jobs(jobs: int) -> int:
