@@ -198,10 +198,11 @@ def default_jobs() -> int:
 
 
 def cgroup_cpu_quota(root: str = CGROUP_ROOT, own: str = "/proc/self/cgroup") -> float | None:
-    """CPUs' worth of time this process's cgroup may use per period (None: no quota, or no
-    cgroup file to say): cgroup v2's ``cpu.max`` ("<quota> <period>" or "max <period>"), else v1's
-    ``cpu.cfs_quota_us`` / ``cpu.cfs_period_us`` (-1: none); the process's own cgroup first
-    (``/proc/self/cgroup``), then the root a container usually sees as its own."""
+    """CPUs' worth of time this process's cgroups let it use per period (None: no quota, or no
+    cgroup file to say): the smallest quota on the way from its own cgroup (``/proc/self/cgroup``)
+    up to the root (a parent's quota binds its children; a container usually sees its own cgroup
+    as the root), in cgroup v2's ``cpu.max`` ("<quota> <period>", "max <period>" for none), else
+    in v1's ``cpu.cfs_quota_us`` / ``cpu.cfs_period_us`` (-1 for none)."""
     v2 = v1 = "/"
     try:
         with open(own) as f:
@@ -214,19 +215,31 @@ def cgroup_cpu_quota(root: str = CGROUP_ROOT, own: str = "/proc/self/cgroup") ->
                     v1 = path or "/"
     except OSError:
         pass
-    for folder in dict.fromkeys((v2, "/")):
-        text = _read_text(os.path.join(root, folder.lstrip("/"), "cpu.max"))
+    found = False
+    quotas: list[float] = []
+    for folder in _up_to_root(v2):
+        text = _read_text(os.path.join(root, folder, "cpu.max"))
         if text:
+            found = True
             quota, _, period = text.partition(" ")
-            if quota == "max":
-                return None
-            return _ratio(quota, period)
-    for folder in dict.fromkeys((v1, "/")):
-        base = os.path.join(root, "cpu", folder.lstrip("/"))
-        quota = _read_text(os.path.join(base, "cpu.cfs_quota_us"))
-        if quota:
-            return None if quota.strip() == "-1" else _ratio(quota, _read_text(os.path.join(base, "cpu.cfs_period_us")) or "")
-    return None
+            ratio = None if quota == "max" else _ratio(quota, period)
+            if ratio is not None:
+                quotas.append(ratio)
+    if not found:
+        for folder in _up_to_root(v1):
+            base = os.path.join(root, "cpu", folder)
+            quota = _read_text(os.path.join(base, "cpu.cfs_quota_us"))
+            if quota and quota != "-1":
+                ratio = _ratio(quota, _read_text(os.path.join(base, "cpu.cfs_period_us")) or "")
+                if ratio is not None:
+                    quotas.append(ratio)
+    return min(quotas) if quotas else None
+
+
+def _up_to_root(path: str) -> list[str]:
+    """``a/b/c``, ``a/b``, ``a``, ``""`` for the cgroup path ``/a/b/c``."""
+    parts = [p for p in path.split("/") if p]
+    return ["/".join(parts[:i]) for i in range(len(parts), -1, -1)]
 
 
 def _read_text(path: str) -> str | None:

@@ -34,6 +34,10 @@ def _tree(root, own: str, files: dict[str, str]):
         ("1:cpu:/\n", {"fs/cpu/cpu.cfs_quota_us": "-1\n", "fs/cpu/cpu.cfs_period_us": "100000\n"}, None),  # v1, none
         ("1:cpu:/\n", {}, None),  # no cgroup files at all
         ("0::/\n", {"fs/cpu.max": "garbage\n"}, None),
+        # a parent's quota binds its child, and the smallest on the way up counts
+        ("0::/pod/box\n", {"fs/pod/box/cpu.max": "max 100000\n", "fs/pod/cpu.max": "250000 100000\n", "fs/cpu.max": "400000 100000\n"}, 2.5),
+        ("1:cpu:/job/step\n", {"fs/cpu/job/step/cpu.cfs_quota_us": "-1\n", "fs/cpu/job/cpu.cfs_quota_us": "100000\n",
+                               "fs/cpu/job/cpu.cfs_period_us": "100000\n"}, 1.0),
     ],
 )
 def test_the_cgroup_quota_is_read_from_either_version(tmp_path, own, files, expected):
