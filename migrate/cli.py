@@ -233,7 +233,7 @@ def main(argv: list[str] | None = None) -> int:
         previous = None
     try:
         return _command_line(argv)
-    except Terminated:  # before or after the command's own handling (starting, stopping the workers)
+    except Terminated:  # wherever it was raised: in the command, or starting or stopping the workers
         print("stateshift: terminated (SIGTERM); the target (if any) is left marked incomplete", file=sys.stderr)
         return 128 + signal.SIGTERM
     finally:
@@ -285,8 +285,7 @@ def _main(argv: list[str]) -> int:
         return 0
     except KeyboardInterrupt as exc:
         if isinstance(exc, Terminated):
-            print("stateshift: terminated (SIGTERM); the target (if any) is left marked incomplete", file=sys.stderr)
-            return 128 + signal.SIGTERM
+            raise  # main says so, wherever it was raised
         print("stateshift: interrupted; the target (if any) is left marked incomplete", file=sys.stderr)
         return 130
     except OSError as exc:  # the machine failed a step that names no file of its own

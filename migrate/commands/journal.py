@@ -68,9 +68,13 @@ def save(dst: Location, journal: dict[str, Any]) -> None:
     dst.write_bytes(JOURNAL, json.dumps(journal, sort_keys=True, separators=(",", ":")).encode())
 
 
-def resume_journal(dst: Location, identity: dict[str, Any]) -> dict[str, Any]:
-    """The journal of an interrupted run into ``dst`` for the same source, or an error."""
+def resume_journal(dst: Location, identity: dict[str, Any]) -> dict[str, Any] | None:
+    """The journal of an interrupted run into ``dst`` for the same source, or an error; None when
+    the target holds nothing of an earlier run but, at most, the temporary file of its first write
+    (a run that failed before its placeholder metadata was written): there is nothing to finish."""
     root = dst.list_dir("")
+    if not [name for name in root if not name.startswith(TEMP_PREFIX)]:
+        return None
     if "metadata" not in root:
         raise UnsafeTarget("--resume needs a target left by an interrupted stateshift run; this one has no metadata", dst.display)
     if not dst.read_bytes("metadata").decode("utf-8", "replace").startswith(INCOMPLETE_PREFIX):
@@ -114,15 +118,11 @@ def run_with_journal(
     back from the target with the recorded digest; every other partition's target directory is
     removed (anything half-written goes) and the task runs again.
     """
-    if resume and not [name for name in dst.list_dir("") if not name.startswith(TEMP_PREFIX)]:
-        # nothing of an earlier run but, at most, the temporary file of its first write (a run
-        # that failed before its placeholder metadata was written): this run starts it afresh
-        resume, overwrite = False, True
-    if resume:
-        state = resume_journal(dst, identity)
-    else:
-        prepare_target(dst, overwrite)
+    state = resume_journal(dst, identity) if resume else None
+    if state is None:  # a fresh run (one --resume found nothing to finish of starts afresh)
+        prepare_target(dst, overwrite or resume)
         state = start(dst, identity)
+        resume = False
     done: dict[str, R] = {}
     todo: list[T] = []
     for t in tasks:
