@@ -15,13 +15,20 @@ stores from memory): ``state/<op>/_stateSchema/<store>/<batch>_<uuid>`` (newer o
 newest one written at or before the archived batch applies), else
 ``state/<op>/<partition>/_metadata/schema`` for the default store and
 ``state/<op>/<partition>/<store>/_metadata/schema`` for a named store.
+
+One field is decoded wider than declared: per-group state (``flatMapGroupsWithState``,
+``applyInPandasWithState``) in state format 1 appends ``timeoutTimestamp`` to the value schema as
+``integer`` but stores the 8-byte epoch-millisecond timeout in its fixed-width slot (observed on
+4.3.0 and 3.5.9: the engine's own restart fails its value-row check on such state unless that
+check is off). Read as the declared int it keeps the low 4 bytes only, so that top-level field is
+decoded as a long and its column is listed as ``long``. The raw bytes are untouched either way.
 """
 
 from __future__ import annotations
 
 import re
 from collections.abc import Callable, Iterable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import pyarrow as pa
@@ -87,9 +94,10 @@ class Side:
     """One side (key or value) of a store's rows and how it is decoded."""
 
     name: str  # "key" or "value"
-    schema: Any  # migrate.rows.schema.StructType, or None when not decoded
+    schema: Any  # migrate.rows.schema.StructType as the schema file declares it, or None
     columns: tuple[Column, ...]
     arrow_fields: tuple[pa.Field, ...]
+    stored: Any = None  # the StructType the rows are decoded with (``schema`` but for ``_as_stored``)
 
 
 @dataclass(frozen=True)
@@ -118,7 +126,7 @@ class RowDecoder:
         if not side.arrow_fields:
             return []
         assert self.decode_fn is not None
-        struct = self.decode_fn(raw, side.schema, self.where)
+        struct = self.decode_fn(raw, side.stored, self.where)
         out = []
         for i, f in enumerate(side.arrow_fields):
             col = struct.field(i)
@@ -148,9 +156,26 @@ def _raw_only_side(name: str, schema: Any) -> Side:
     return Side(name, schema, cols, ())
 
 
-def _typed_side(name: str, schema: Any) -> Side:
+#: (side, top-level field name) of the integer fields the engine stores as longs, see the module
+#: docstring.
+_STORED_AS_LONG = {("value", "timeoutTimestamp")}
+
+
+def _as_stored(name: str, schema: Any) -> Any:
+    """``schema`` with the fields of ``_STORED_AS_LONG`` typed as the engine stores them."""
+    from ..rows.types import IntegerType, LongType
+
+    fields = tuple(
+        replace(f, data_type=LongType()) if (name, f.name) in _STORED_AS_LONG and isinstance(f.data_type, IntegerType) else f
+        for f in schema.fields
+    )
+    return replace(schema, fields=fields) if fields != schema.fields else schema
+
+
+def _typed_side(name: str, declared: Any) -> Side:
     from ..rows.schema import arrow_type, contains_unknown
 
+    schema = _as_stored(name, declared)
     taken = {"key", "value"}
     cols: list[Column] = []
     fields: list[pa.Field] = []
@@ -158,7 +183,7 @@ def _typed_side(name: str, schema: Any) -> Side:
         column = _unique(f"{name}_{f.name}", taken)
         cols.append(Column(name, f.name, f.data_type.simple_string(), column, not contains_unknown(f.data_type)))
         fields.append(pa.field(column, arrow_type(f.data_type), True))
-    return Side(name, schema, tuple(cols), tuple(fields))
+    return Side(name, declared, tuple(cols), tuple(fields), schema)
 
 
 def raw_decoder(where: str, note: str | None, key_schema: Any = None, value_schema: Any = None) -> RowDecoder:

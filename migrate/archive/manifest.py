@@ -84,7 +84,7 @@ class Column:
 
     side: str  # "key" or "value"
     field: str  # the schema field name
-    spark_type: str  # the engine's type, as a simple string
+    spark_type: str  # the type the column is decoded as, a simple string (the schema's, see archive.columns)
     column: str | None  # the Parquet column, None when the field is not in the files
     decoded: bool
 

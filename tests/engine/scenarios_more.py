@@ -194,7 +194,7 @@ DRONE_LEFT_JOIN = Scenario(
 
 _BUOY_SCHEMA = "buoy STRING, event_time TIMESTAMP, wave_cm BIGINT"
 _TALLY_COLUMNS = ("buoy", "readings", "wave_sum", "status")
-_DEADLINE_MS = 15 * 60 * 1000  # event-time timeout: 15 minutes after the buoy's latest reading
+DEADLINE_MS = 15 * 60 * 1000  # event-time timeout: 15 minutes after the buoy's latest reading
 # Processing-time timeout: 1 ms of batch time. Consecutive batches are always further apart, so a
 # buoy with no reading in the next batch times out there: deterministic in batch terms.
 _SILENCE_MS = 1
@@ -234,7 +234,7 @@ def _tally_pandas(timeout: str) -> Any:
             latest_ms = newest if latest_ms is None else max(latest_ms, newest)
         state.update((readings, wave_sum))
         if timeout == "EventTimeTimeout" and latest_ms is not None:
-            state.setTimeoutTimestamp(max(latest_ms + _DEADLINE_MS, state.getCurrentWatermarkMs() + 1))
+            state.setTimeoutTimestamp(max(latest_ms + DEADLINE_MS, state.getCurrentWatermarkMs() + 1))
         elif timeout == "ProcessingTimeTimeout":
             state.setTimeoutDuration(_SILENCE_MS)
         yield pd.DataFrame({"buoy": [buoy], "readings": [readings], "wave_sum": [wave_sum], "status": ["open"]})
@@ -389,7 +389,7 @@ def _jvm_builder(timeout: str) -> Any:
         enc = jvm.org.apache.spark.sql.Encoders
         timeouts = jvm.org.apache.spark.sql.streaming.GroupStateTimeout
         source = df.withWatermark("event_time", "10 minutes") if timeout == "EventTimeTimeout" else df
-        deadline = {"EventTimeTimeout": _DEADLINE_MS, "ProcessingTimeTimeout": _SILENCE_MS}.get(timeout, 0)
+        deadline = {"EventTimeTimeout": DEADLINE_MS, "ProcessingTimeTimeout": _SILENCE_MS}.get(timeout, 0)
         tally = _java_instance(spark, "Tally", jvm.java.lang.Long(deadline), jvm.java.lang.Boolean(timeout == "EventTimeTimeout"))
         grouped = source._jdf.groupByKey(_java_instance(spark, "Key"), enc.STRING())
         result = grouped.flatMapGroupsWithState(

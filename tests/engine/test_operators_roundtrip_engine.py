@@ -19,7 +19,9 @@ time, one per source provider, to overlap the engine's waiting). The proof:
    the new provider;
 3. every store the operator metadata names was moved with rows, into its own directory, with its
    own schema file;
-4. the source checkpoint and the archive are byte-for-byte unchanged.
+4. the source checkpoint and the archive are byte-for-byte unchanged;
+5. with an event-time timeout, the archive's typed timeout column holds the deadlines the group
+   function set (state format 1 declares it an int but stores a long).
 """
 
 from __future__ import annotations
@@ -197,6 +199,8 @@ def _first_run_and_move(spark, scenario, root: Path, source: str) -> Moved:
     archive = root / "archive"
     assert _cli_json("export", str(src), str(archive))["batch"] == last_batch
     archived = tree_digest(archive)
+    if "event_timeout" in scenario.name:
+        _assert_archived_deadlines(scenario, archive)
     imported = root / f"imported-{target}"
     assert _cli_json("import", str(archive), str(imported), "--to", target)["verified"] is True
     assert tree_digest(src) == before, f"convert/export/import changed the {source} source checkpoint"
@@ -211,6 +215,30 @@ def _first_run_and_move(spark, scenario, root: Path, source: str) -> Moved:
         _assert_store_layout(checkpoint, src, stores, partitions)
     return Moved(source, input_dir, src, control, converted, imported, archive, last_batch, stores, partitions,
                  before, archived)
+
+
+def _assert_archived_deadlines(scenario, archive: Path) -> None:
+    """The archive's typed timeout column holds each open buoy's event-time deadline as the group
+    function set it: its newest reading of the first run plus the deadline (the watermark, ten
+    minutes behind, never wins). In state format 1 the engine declares that field an int but
+    stores the 8-byte value; decoded as declared, a 2032 deadline would be garbage."""
+    import pyarrow.parquet as pq
+    from datetime import datetime
+
+    newest: dict[str, int] = {}
+    for rows in scenario.files[:FIRST_RUN_FILES]:
+        for r in rows:
+            ms = int(datetime.fromisoformat(r["event_time"].replace("Z", "+00:00")).timestamp() * 1000)
+            newest[r["buoy"]] = max(newest.get(r["buoy"], ms), ms)
+    found: dict[str, int] = {}
+    for f in sorted((archive / "state").rglob("*.parquet")):
+        table = pq.read_table(f)
+        key = next(n for n in table.column_names if n.startswith("key_"))
+        assert str(table.schema.field("value_timeoutTimestamp").type) == "int64", f
+        found.update(zip(table.column(key).to_pylist(), table.column("value_timeoutTimestamp").to_pylist()))
+    assert found, f"{scenario.name}: no per-group state in the archive"
+    expected = {buoy: newest[buoy] + sm.DEADLINE_MS for buoy in found}
+    assert found == expected, f"{scenario.name}: archived deadlines {found} != the group function's {expected}"
 
 
 @pytest.mark.parametrize("scenario_name", list(sm.SCENARIOS))

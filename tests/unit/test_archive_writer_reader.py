@@ -275,3 +275,48 @@ def test_with_files_hashed_at_once_the_first_damaged_file_in_manifest_order_is_n
         reader.check_archive(arch, manifest, seen.append)
     assert "partition=2/" in str(info.value) and "partition=4/" not in str(info.value)
     assert seen == [files[0].path, files[1].path]
+
+
+def _fields_json(*fields: tuple[str, str]) -> str:
+    return json.dumps({"type": "struct", "fields": [
+        {"name": n, "type": t, "nullable": False, "metadata": {}} for n, t in fields]})
+
+
+def test_a_per_group_timeout_declared_int_but_stored_as_a_long_keeps_all_eight_bytes(loc):
+    from migrate.archive.columns import schema_json
+
+    # Per-group state format 1: the value schema ends with `timeoutTimestamp` declared "integer",
+    # while the engine writes an 8-byte epoch-millisecond value into its slot (observed on the
+    # engine's files; see migrate/archive/columns.py). A key field of that name stays an int.
+    key_json = _fields_json(("timeoutTimestamp", "integer"))
+    value_json = _fields_json(("readings", "long"), ("timeoutTimestamp", "integer"))
+    schema = _utf("v1") + _utf(key_json) + _utf(value_json)
+    stamps = [1_978_677_000_000, -1, 2**31 + 5, 7]  # 2032-09-14 in ms, "no timeout", above int range, small
+    # UnsafeRow, as the row format lays it out (common practice): an 8-byte null bitset, then one
+    # 8-byte slot per fixed-width field, ints in the low 4 bytes of theirs
+    keys = [struct.pack("<qq", 0, 40 + i) for i in range(len(stamps))]
+    values = [struct.pack("<qqq", 0, 3 * i, ts) for i, ts in enumerate(stamps)]
+    batch = pa.RecordBatch.from_arrays([pa.array(keys, pa.binary()), pa.array(values, pa.binary())], schema=ROW_SCHEMA)
+    decoder = decoder_for(schema, "schema")
+    rel = data_file_rel(0, "default", 0)
+    w = write_data_file(loc, rel, [batch], decoder, {})
+    table = pq.read_table(loc.path(rel))
+    assert w.undecoded_rows == 0
+    assert table.column("value_timeoutTimestamp").type == pa.int64()
+    assert table.column("value_timeoutTimestamp").to_pylist() == stamps
+    assert table.column("value_readings").to_pylist() == [0, 3, 6, 9]
+    assert table.column("key_timeoutTimestamp").type == pa.int32()
+    assert table.column("key_timeoutTimestamp").to_pylist() == [40, 41, 42, 43]
+    types = {(c.side, c.field): c.spark_type for c in decoder.columns}
+    assert types == {("key", "timeoutTimestamp"): "integer", ("value", "readings"): "long", ("value", "timeoutTimestamp"): "long"}
+    # the manifest keeps the schema as the engine declared it
+    assert schema_json(decoder) == (json.loads(key_json), json.loads(value_json))
+    assert table.column("value").to_pylist() == values  # the raw bytes as they were
+
+
+def test_a_timeout_field_of_another_type_or_nested_is_decoded_as_declared():
+    nested = json.dumps({"type": "struct", "fields": [{"name": "groupState", "type": json.loads(_fields_json(("timeoutTimestamp", "integer"))),
+                                                      "nullable": True, "metadata": {}}]})
+    for value_json in (_fields_json(("timeoutTimestamp", "long")), _fields_json(("timeoutTimestamp", "short")), nested):
+        decoder = decoder_for(_utf("v1") + _utf(_fields_json(("k", "long"))) + _utf(value_json), "schema")
+        assert decoder.value.stored == decoder.value.schema, value_json
