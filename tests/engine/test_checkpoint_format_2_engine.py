@@ -2,9 +2,11 @@
 
 The engine (4.3.0, RocksDB, ``spark.sql.streaming.stateStore.checkpointFormatVersion=2``) writes
 a checkpoint whose state files are ``<v>_<uid>.zip`` / ``<v>_<uid>.changelog`` and whose commits
-are ``v2`` with ``stateUniqueIds``. Three queries: a streaming aggregation, the same with
-changelog checkpointing (versions held by v3 changelogs with a lineage header), and a
-stream-stream join (four stores, four ids per partition). Each is moved four ways:
+are ``v2`` with ``stateUniqueIds``. The queries: a streaming aggregation, the same with
+changelog checkpointing (versions held by v3 changelogs with a lineage header), a stream-stream
+join (four stores, four ids per partition), deduplication chained with a windowed aggregation
+(two operators, ids under each), session windows (prefix-key encoding) and per-group state
+(``applyInPandasWithState`` with an event-time timeout). Each is moved four ways:
 
 * ``convert --to hdfs``: plain heap-map files, commits ``v1`` without ids; restarted with
   format 1 (the heap map refuses format 2);
@@ -12,7 +14,8 @@ stream-stream join (four stores, four ids per partition). Each is moved four way
   new ids in file names and in the latest commit; restarted with format 2;
 * ``import --to hdfs``: as the convert to hdfs.
 
-The control is an untouched copy restarted with format 2. Continued output must equal the
+transformWithState (column families, timers) in format 2 is cloned and archived into RocksDB only
+(the heap map cannot hold it). The control is an untouched copy restarted with format 2. Continued output must equal the
 control's; the targets must have gone on in their own format (new RocksDB versions named with
 ids that the new commits list, new heap-map deltas and v1 commits); the source is unchanged.
 """
@@ -27,10 +30,9 @@ import pytest
 import scenarios as sc
 import scenarios_more as sm
 from test_convert_roundtrip_engine import describe, run_cli, tree_digest
+from test_session_window_engine import SESSIONS
 
 # The state checkpoint format 2 (unique ids) first appears in 4.x; 3.5 has no such setting.
-pytestmark = pytest.mark.skipif(sc.ENGINE_35, reason="state checkpoint format 2 does not exist in engine 3.5")
-
 pytestmark = pytest.mark.skipif(
     sc.ENGINE_35, reason="engine 3.5 has no state checkpoint format 2 (it refuses v2 commits: FINDINGS.md)"
 )
@@ -44,6 +46,9 @@ CASES = {
     "aggregation": (sc.BAY_TOTALS, False),
     "aggregation-changelog": (sc.BAY_TOTALS, True),
     "join": (sm.DRONE_INNER_JOIN, False),
+    "dedup-then-windows": (sm.PING_DEDUP_THEN_WINDOWS, False),
+    "session-windows": (SESSIONS, False),
+    "per-group-state": (sm.BUOY_PANDAS_EVENT_V2, False),
 }
 
 
@@ -63,25 +68,38 @@ def _commit(checkpoint: Path, batch: int) -> tuple[str, dict]:
     return head, json.loads(body)
 
 
-def _store_dirs(checkpoint: Path) -> dict[tuple[int, str], Path]:
-    """(partition, store) -> directory, from the operator metadata's store order."""
-    meta = json.loads((checkpoint / "state/0/_metadata/metadata").read_text().split("\n", 1)[1])
-    names = [s["storeName"] for s in meta["stateStoreInfo"]]
+def _operator_stores(checkpoint: Path) -> dict[int, list[str]]:
+    """Operator id -> store names, from the operator metadata: ``_metadata/metadata``, or for
+    transformWithState the newest ``_metadata/v2/<batch>`` (observed on 4.3.0)."""
     out = {}
-    for part in sorted(p for p in (checkpoint / "state/0").iterdir() if p.name.isdigit()):
-        for name in names:
-            out[(int(part.name), name)] = part if name == "default" else part / name
+    for op in sorted(p for p in (checkpoint / "state").iterdir() if p.name.isdigit()):
+        meta = op / "_metadata" / "metadata"
+        if not meta.exists():
+            meta = max((f for f in (op / "_metadata" / "v2").iterdir() if f.name.isdigit()), key=lambda f: int(f.name))
+        out[int(op.name)] = [s["storeName"] for s in json.loads(meta.read_text().split("\n", 1)[1])["stateStoreInfo"]]
+    return out
+
+
+def _store_dirs(checkpoint: Path) -> dict[tuple[int, int, int], Path]:
+    """(operator, partition, store's place in the operator metadata) -> directory."""
+    out = {}
+    for op, names in _operator_stores(checkpoint).items():
+        for part in sorted(p for p in (checkpoint / "state" / str(op)).iterdir() if p.name.isdigit()):
+            for i, name in enumerate(names):
+                out[(op, int(part.name), i)] = part if name == "default" else part / name
     return out
 
 
 def _assert_ids_name_files(checkpoint: Path, batch: int, suffixes: tuple[str, ...]) -> list[str]:
-    """The commit of ``batch`` is v2 and each id it lists names a file of version batch+1."""
+    """The commit of ``batch`` is v2, it lists an id for every store partition of every
+    operator, and each id names a file of version batch+1."""
     head, body = _commit(checkpoint, batch)
     assert head == "v2" and "stateUniqueIds" in body, f"{checkpoint}: commits/{batch} is {head} {body}"
-    names = [s["storeName"] for s in json.loads((checkpoint / "state/0/_metadata/metadata").read_text().split("\n", 1)[1])["stateStoreInfo"]]
+    dirs = _store_dirs(checkpoint)
+    assert sorted(body["stateUniqueIds"]) == sorted({str(op) for op, _, _ in dirs}), body["stateUniqueIds"]
     ids = []
-    for (part, store), d in _store_dirs(checkpoint).items():
-        uid = body["stateUniqueIds"]["0"][part][names.index(store)]
+    for (op, part, store), d in dirs.items():
+        uid = body["stateUniqueIds"][str(op)][part][store]
         ids.append(uid)
         assert any((d / f"{batch + 1}_{uid}{s}").exists() for s in suffixes), f"{d}: no file for version {batch + 1} id {uid}"
     return ids
@@ -138,6 +156,8 @@ def test_format_2_checkpoint_moves_and_the_engine_continues(spark, tmp_path: Pat
     sc.write_input_files(input_dir, scenario, FIRST_RUN_FILES, TOTAL_FILES)
     control_out = _run(spark, scenario, input_dir, control, None, 2, changelog)
     assert control_out and min(control_out) > last
+    if scenario.name in sm.CARRIED:  # a row only the state from before the move explains
+        assert sm.CARRIED[scenario.name] in {r for rows in control_out.values() for r in rows}, scenario.name
     new_last = sc.batch_ids_in_commits(control)[-1]
     for name, (dst, fmt) in targets.items():
         out = _run(spark, scenario, input_dir, dst, None, fmt, changelog)
@@ -175,3 +195,42 @@ def test_heap_map_converted_to_rocksdb_format_2_continues(spark, tmp_path: Path)
     new_last = sc.batch_ids_in_commits(dst)[-1]
     assert new_last == sc.batch_ids_in_commits(control)[-1]
     _assert_ids_name_files(dst, new_last, (".zip",))
+
+
+def test_transform_with_state_in_format_2_clones_and_continues(spark, tmp_path: Path) -> None:
+    """transformWithState (column families, timers) in format 2: ``convert --to rocksdb`` and
+    ``export`` + ``import --to rocksdb`` keep format 2 with new ids; restarted with format 2 the
+    engine continues like the control, timers firing after the move."""
+    from test_transform_with_state_engine import EVENT_TIME
+
+    scenario = EVENT_TIME
+    input_dir, src = tmp_path / "input", tmp_path / "src"
+    sc.write_input_files(input_dir, scenario, 0, FIRST_RUN_FILES)
+    first = _run(spark, scenario, input_dir, src, "rocksdb", 2, False)
+    assert any(r[1] == "expired" for rows in first.values() for r in rows), "no timer fired in the first run"
+    last = sc.batch_ids_in_commits(src)[-1]
+    source_ids = _assert_ids_name_files(src, last, (".zip",))
+    before = tree_digest(src)
+    control, clone, archive, imported = (tmp_path / n for n in ("control", "clone", "archive", "imported"))
+    shutil.copytree(src, control)
+    for args in (("convert", str(src), str(clone), "--to", "rocksdb"), ("export", str(src), str(archive)),
+                 ("import", str(archive), str(imported), "--to", "rocksdb")):
+        proc = run_cli(*args, "--json")
+        assert proc.returncode == 0, describe(proc)
+        if args[0] != "export":
+            assert json.loads(proc.stdout)["checkpoint_format"] == {"source": 2, "target": 2}, args
+    assert tree_digest(src) == before, "the tool changed the source checkpoint"
+    for dst in (clone, imported):
+        assert not set(_assert_ids_name_files(dst, last, (".zip",))) & set(source_ids), f"{dst.name} reuses the engine's ids"
+
+    sc.write_input_files(input_dir, scenario, FIRST_RUN_FILES, TOTAL_FILES)
+    control_out = _run(spark, scenario, input_dir, control, None, 2, False)
+    assert control_out and min(control_out) > last
+    assert any(r[1] == "expired" for rows in control_out.values() for r in rows), "no timer fired after the restart"
+    src.rename(tmp_path / "src-moved-away")  # nothing moved may still read the source
+    new_last = sc.batch_ids_in_commits(control)[-1]
+    for dst in (clone, imported):
+        out = _run(spark, scenario, input_dir, dst, None, 2, False)
+        assert out == control_out, f"{dst.name}: continued output differs from the control"
+        assert sc.batch_ids_in_commits(dst)[-1] == new_last
+        _assert_ids_name_files(dst, new_last, (".zip",))
