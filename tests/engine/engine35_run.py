@@ -2,8 +2,8 @@
 
     python engine35_run.py MODULE NAME INPUT_DIR CHECKPOINT PROVIDER
 
-``MODULE`` is ``scenarios``, ``scenarios_more`` or ``scenarios_upgrade``, ``NAME`` a scenario of
-it; the query runs once over the input files the caller wrote into ``INPUT_DIR`` not yet seen by
+``MODULE`` is ``scenarios``, ``scenarios_more``, ``scenarios_upgrade`` or
+``test_session_window_engine``, ``NAME`` a scenario of it; the query runs once over the input files the caller wrote into ``INPUT_DIR`` not yet seen by
 ``CHECKPOINT``, on ``PROVIDER`` (``hdfs``/``rocksdb``; ``-`` for the one the checkpoint pins).
 Prints ``{"pyspark": version, "rows": [[batch, [values as str]], ...]}`` on the last line.
 The session matches ``conftest.spark`` (local[2], 2 shuffle partitions, UTC, maintenance 3600 s).

@@ -67,6 +67,8 @@ SESSIONS = sc.Scenario(
     ),
     notes="withWatermark + groupBy(session_window(5 min), bay) count/sum; append mode",
 )
+#: for ``engine35_run.py``, which runs a module's scenarios by name
+SCENARIOS = {SESSIONS.name: SESSIONS}
 
 
 def _first_run(spark, root: Path, provider: str) -> tuple[Path, Path]:
