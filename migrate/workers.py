@@ -40,15 +40,16 @@ PRELOAD = [
 #: alternating pairs: the server's imports 0.26 -> 0.22 s, the command 1.89 / 1.94 / 2.09 ->
 #: 1.83 / 1.89 / 2.07 CPU s and 1.13 / 1.15 / 1.25 -> 1.09 / 1.12 / 1.20 s (medians;
 #: ``benchmarks/results/2026-12-04-ab-convert-preload.md``). Export and import need it all.
-COMMAND_PRELOAD = {
-    "convert": [
-        "migrate._server_exit", "migrate.commands.convert", "migrate.providers.hdfs", "migrate.providers.rocksdb",
-        "numpy.ma", "pyarrow.compute", "rocksdict", "pandas",
-    ],
-}
+#: ``verify``, ``inspect --rows`` and a convert's dry run only read and digest checkpoints.
+_READ_AND_MOVE = [
+    "migrate._server_exit", "migrate.commands.convert", "migrate.providers.hdfs", "migrate.providers.rocksdb",
+    "numpy.ma", "pyarrow.compute", "rocksdict", "pandas",
+]
+COMMAND_PRELOAD = {"convert": _READ_AND_MOVE, "verify": _READ_AND_MOVE, "inspect": _READ_AND_MOVE}
 
-#: the commands whose store partitions run in workers
-PARALLEL_COMMANDS = ("convert", "export", "import")
+#: the commands whose store partitions run in workers (``inspect`` only with ``--rows``; a dry
+#: run only for ``convert``, whose plan digests every partition)
+PARALLEL_COMMANDS = ("convert", "export", "import", "verify", "inspect")
 #: a command with at least this many store partitions (or bytes) uses workers
 #: (``commands.common.uses_workers`` makes the decision; these are its thresholds)
 MIN_TASKS = 8
@@ -156,15 +157,20 @@ def running() -> bool:
 
 
 def likely_parallel(argv: list[str]) -> bool:
-    """Whether this command line will probably run store partitions in workers: a convert, export
-    or import (not a dry run, not help) with more than one job, whose source is remote or a local
-    checkpoint or archive with at least :data:`MIN_TASKS` store partitions or :data:`MIN_BYTES` of
-    state. Every argument that names a local directory is looked at (no option table needed: a
-    value such as ``rocksdb`` or ``KEY=VALUE`` is no directory); a wrong guess costs a server
-    started and stopped again, or one started later."""
+    """Whether this command line will probably run store partitions in workers: one of
+    :data:`PARALLEL_COMMANDS` (not help, not an import's dry run, an inspect only with
+    ``--rows``) with more than one job, whose source is remote or a local checkpoint or archive
+    with at least :data:`MIN_TASKS` store partitions or :data:`MIN_BYTES` of state. Every argument
+    that names a local directory is looked at (no option table needed: a value such as
+    ``rocksdb`` or ``KEY=VALUE`` is no directory); a wrong guess costs a server started and
+    stopped again, or one started later."""
     if not argv or argv[0] not in PARALLEL_COMMANDS:
         return False
-    if any(a in ("-h", "--help", "--dry-run") for a in argv[1:]):
+    if any(a in ("-h", "--help") for a in argv[1:]):
+        return False
+    if "--dry-run" in argv[1:] and argv[0] != "convert":
+        return False
+    if argv[0] == "inspect" and "--rows" not in argv[1:]:
         return False
     if _jobs(argv[1:]) <= 1:
         return False

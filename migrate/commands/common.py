@@ -15,7 +15,7 @@ from collections.abc import Callable, Iterable
 from concurrent.futures import ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, ClassVar
 
 from .. import faults, scratch, workers
 from ..checkpoint.engine import (
@@ -250,15 +250,58 @@ def refuse_unwritable(ckpt: Checkpoint, target_provider: str) -> None:
             dst.check_writable(src.store_properties(sp.dir, ckpt.state_version, ctx), sp.dir.describe())
 
 
-def digest_partition(
-    sp: StorePartition, provider: str, version: int, conf: dict[str, str], prefix: int, uid: str | None = None
-) -> tuple[Digest, int]:
-    """Digest of one store partition of a checkpoint, plus its source bytes (``uid``: the id of the
-    version, state checkpoint format 2)."""
-    p = provider_for(provider)
-    ctx = ReadContext(conf=conf, num_cols_prefix_key=prefix, listing=sp.listing, checkpoint_id=uid)
-    size = sum(f.size for f in p.source_files(sp.dir, version, ctx))
-    return digest_batches(p.read(sp.dir, version, ctx)), size
+@dataclass(frozen=True)
+class DigestTask:
+    """Read one store partition of a checkpoint at its latest consistent version and digest it
+    (``verify``, ``inspect --rows``, ``convert --dry-run``): plain data, run in a worker like a
+    :class:`PartitionTask`."""
+
+    dir: StoreDir
+    provider: str
+    version: int
+    conf: dict[str, str]
+    num_cols_prefix_key: int = 0
+    uid: str | None = None  # id of the version (state checkpoint format 2)
+    listing: dict[str, Any] | None = field(default=None, compare=False)
+    action: ClassVar[str] = "read this store partition"  # what an OS error in it failed to do
+
+    @property
+    def where(self) -> str:
+        return self.dir.describe()
+
+
+def digest_task(ckpt: Checkpoint, sp: StorePartition) -> DigestTask:
+    op = next(o for o in ckpt.operators if o.operator_id == sp.operator_id)
+    return DigestTask(sp.dir, ckpt.provider_class, ckpt.state_version, ckpt.conf,
+                      op.store_info(sp.store_name).num_cols_prefix_key, partition_uid(ckpt, sp), sp.listing)
+
+
+@dataclass(frozen=True)
+class DigestResult:
+    digest: Digest
+    source_bytes: int
+
+    @property
+    def moved_rows(self) -> int:  # what the progress bar counts
+        return self.digest.rows
+
+
+def run_digest_task(task: DigestTask) -> DigestResult:
+    """Digest of one store partition, plus its source bytes."""
+    p = provider_for(task.provider)
+    ctx = ReadContext(conf=task.conf, num_cols_prefix_key=task.num_cols_prefix_key, listing=task.listing, checkpoint_id=task.uid)
+    size = sum(f.size for f in p.source_files(task.dir, task.version, ctx))
+    return DigestResult(digest_batches(p.read(task.dir, task.version, ctx)), size)
+
+
+def digest_partitions(
+    tasks: list[DigestTask], jobs: int, on_done: Callable[[DigestResult], None] = lambda r: None
+) -> list[DigestResult]:
+    """The digest and source bytes of each task's store partition, in order; ``jobs`` of them at
+    a time in worker processes (:func:`run_tasks`), so a read-only command reads a large
+    checkpoint as fast as a convert does."""
+    start_workers_early(jobs, tasks)
+    return run_tasks(tasks, run_digest_task, jobs, on_done)
 
 
 PARALLEL_MIN_BYTES = workers.MIN_BYTES
@@ -363,17 +406,24 @@ def run_task(fn: Callable[[Any], Any], task: Any) -> Any:
     """``fn(task)``, with an operating-system error that no step turned into a one-line error
     (a full scratch disk met where nobody expected one) made one, naming the file and the
     partition (``task.where``), and so is running out of memory."""
+    action = getattr(task, "action", "move this store partition")
     try:
         return fn(task)
     except OSError as exc:
         if exc.filename is None:
-            raise os_failure(exc, "move this store partition", task.where) from exc
-        raise os_failure(exc, f"use this file while moving {task.where}") from exc
+            raise os_failure(exc, action, task.where) from exc
+        raise os_failure(exc, f"use this file while {_ing(action).split(' ', 1)[0]} {task.where}") from exc
     except MemoryError as exc:  # Python's, or Arrow's (ArrowMemoryError is one): a limit on this process
         raise SystemFailure(
-            "ran out of memory moving this store partition (a memory limit on the process, or the machine's); "
+            f"ran out of memory {_ing(action)} (a memory limit on the process, or the machine's); "
             "lower --jobs, then run the command again", task.where,
         ) from exc
+
+
+def _ing(action: str) -> str:
+    """"move this store partition" -> "moving this store partition"."""
+    verb, _, rest = action.partition(" ")
+    return f"{verb[:-1] if verb.endswith('e') else verb}ing {rest}"
 
 
 def _run_in_worker(fn: Callable[[Any], Any], task: Any) -> Any:
@@ -424,6 +474,11 @@ def _worker_death(task: Any, processes: list[Any]) -> str:
         else:
             how = f"exited with status {code}"
         break
+    if isinstance(task, DigestTask):  # a read-only command: nothing to resume
+        return (
+            f"a worker process {how} while store partitions were being read (the first not finished: {task.where}); "
+            "lower --jobs if memory ran short, then run the command again"
+        )
     return (
         f"a worker process {how} while store partitions were being moved (the first not finished: {task.where}); "
         "lower --jobs if memory ran short, then run the command again (convert and import: with --resume)"

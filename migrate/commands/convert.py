@@ -36,7 +36,6 @@ from ..checkpoint.uids import (
     check_chain_against_commits,
     checkpoint_format,
     commits_for_target,
-    partition_uid,
     target_format,
     uids_table,
 )
@@ -51,7 +50,8 @@ from .common import (
     add_checkpoint_format_argument,
     add_target_arguments,
     checked_jobs,
-    digest_partition,
+    digest_partitions,
+    digest_task,
     engine_plan,
     guard_target,
     refuse_format_for_engine,
@@ -204,7 +204,7 @@ def convert(
     partitions = ckpt.store_partitions()
     on_plan(len(partitions))
     if dry_run:
-        report.partitions = dry_run_partitions(ckpt, target.name, progress)
+        report.partitions = dry_run_partitions(ckpt, target.name, progress, jobs)
         report.files = plan_files(ckpt, target_class, fmt, schema_rewrites)
         return report
 
@@ -240,20 +240,19 @@ def written_uids(ckpt: Checkpoint, tasks: list[PartitionTask]) -> dict[int, list
     )
 
 
-def dry_run_partitions(ckpt: Checkpoint, target_name: str, progress: Callable[[PartitionResult], None]) -> list[dict[str, Any]]:
+def dry_run_partitions(
+    ckpt: Checkpoint, target_name: str, progress: Callable[[Any], None], jobs: int = 1
+) -> list[dict[str, Any]]:
+    """The plan of each store partition: its rows, source bytes and digest (every partition read,
+    ``jobs`` at a time) and the files the target would get."""
+    partitions = ckpt.store_partitions()
+    results = digest_partitions([digest_task(ckpt, sp) for sp in partitions], jobs, progress)
     out = []
-    for op in ckpt.operators:
-        for sp in op.partitions:
-            digest, size = digest_partition(
-                sp, ckpt.provider_class, ckpt.state_version, ckpt.conf, op.store_info(sp.store_name).num_cols_prefix_key,
-                partition_uid(ckpt, sp),
-            )
-            r = PartitionResult(sp.operator_id, sp.store_name, sp.partition, digest, None, size, 0, 0)
-            progress(r)
-            entry = r.to_json()
-            entry["target_files"] = [f"{sp.dir.rel}/{n}" for n in target_names(target_name, ckpt.state_version)]
-            del entry["verified"], entry["written"], entry["target_digest"]
-            out.append(entry)
+    for sp, d in zip(partitions, results):
+        entry = PartitionResult(sp.operator_id, sp.store_name, sp.partition, d.digest, None, d.source_bytes, 0, 0).to_json()
+        entry["target_files"] = [f"{sp.dir.rel}/{n}" for n in target_names(target_name, ckpt.state_version)]
+        del entry["verified"], entry["written"], entry["target_digest"]
+        out.append(entry)
     return out
 
 

@@ -7,20 +7,23 @@ reports its row count and digest (reads all state; still writes nothing).
 from __future__ import annotations
 
 import argparse
+from collections.abc import Callable
 from typing import Any
 
 from ..checkpoint.engine import infer_engine
 from ..checkpoint.logs import CODEC_CONF, PARTITIONS_CONF
-from ..checkpoint.model import Checkpoint, load_checkpoint
+from ..checkpoint.model import Checkpoint, StorePartition, load_checkpoint
 from ..checkpoint.uids import checkpoint_format, partition_uid
 from ..errors import StateshiftError
 from ..storage import Location
-from .common import digest_partition
+from .common import DigestResult, add_jobs_argument, checked_jobs, digest_partitions, digest_task
 
 
-def describe(ckpt: Checkpoint, rows: bool = False) -> dict[str, Any]:
+def describe(ckpt: Checkpoint, rows: bool = False, jobs: int = 1, progress: Callable[[DigestResult], None] = lambda r: None,
+             on_plan: Callable[[int], None] = lambda n: None) -> dict[str, Any]:
     provider = ckpt.provider
     latest_offsets = ckpt.offsets[ckpt.latest_batch]
+    to_digest: list[tuple[dict[str, Any], StorePartition]] = []  # --rows: the rebuildable ones
     ops = []
     for op in ckpt.operators:
         stores = []
@@ -46,14 +49,16 @@ def describe(ckpt: Checkpoint, rows: bool = False) -> dict[str, Any]:
                     entry["rebuildable"] = False
                     entry["problem"] = str(exc)
                 if rows and entry["rebuildable"]:
-                    digest, _ = digest_partition(
-                        sp, ckpt.provider_class, ckpt.state_version, ckpt.conf, info.num_cols_prefix_key, partition_uid(ckpt, sp)
-                    )
-                    entry["rows"] = digest.rows
-                    entry["digest"] = digest.hexdigest
+                    to_digest.append((entry, sp))
                 entries.append(entry)
             stores.append({"name": info.name, "num_cols_prefix_key": info.num_cols_prefix_key, "partitions": entries})
         ops.append({"operator": op.operator_id, "name": op.name, "stores": stores})
+    if to_digest:
+        on_plan(len(to_digest))
+    done = digest_partitions([digest_task(ckpt, sp) for _, sp in to_digest], jobs, progress)
+    for (entry, _), result in zip(to_digest, done):
+        entry["rows"] = result.digest.rows
+        entry["digest"] = result.digest.hexdigest
     sources = sorted(n for n, e in ckpt.location.list_dir("sources").items() if e.is_dir)
     return {
         "checkpoint": ckpt.location.display,
@@ -87,8 +92,9 @@ def _ctx(ckpt: Checkpoint, listing: Any, uid: str | None = None) -> Any:
     return ReadContext(conf=ckpt.conf, listing=listing, checkpoint_id=uid)
 
 
-def inspect(src: Location, rows: bool = False) -> dict[str, Any]:
-    return describe(load_checkpoint(src), rows=rows)
+def inspect(src: Location, rows: bool = False, jobs: int = 1, progress: Callable[[DigestResult], None] = lambda r: None,
+            on_plan: Callable[[int], None] = lambda n: None) -> dict[str, Any]:
+    return describe(load_checkpoint(src), rows=rows, jobs=jobs, progress=progress, on_plan=on_plan)
 
 
 def render(info: dict[str, Any]) -> str:
@@ -140,10 +146,13 @@ def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
     i = sub.add_parser("inspect", parents=[common], help="show what a checkpoint holds")
     i.add_argument("source", metavar="SRC")
     i.add_argument("--rows", action="store_true", help="also rebuild every store partition and count rows (reads all state)")
+    add_jobs_argument(i)
     i.set_defaults(run=run)
 
 
 def run(args: argparse.Namespace, ctx: Any) -> int:
-    info = inspect(ctx.open(args.source), rows=args.rows)
+    info = inspect(ctx.open(args.source), rows=args.rows, jobs=checked_jobs(args.jobs), progress=ctx.progress.step,
+                   on_plan=ctx.progress.start)
+    ctx.progress.close()
     ctx.emit(info, render(info))
     return 0

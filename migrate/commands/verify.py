@@ -11,27 +11,35 @@ from collections.abc import Callable
 from typing import Any
 
 from ..checkpoint.model import Checkpoint, load_checkpoint
-from ..checkpoint.uids import partition_uid
 from ..digest import Digest
 from ..storage import Location
-from .common import digest_partition
+from .common import DigestResult, add_jobs_argument, checked_jobs, digest_partitions, digest_task
+
+Key = tuple[int, str, int]
 
 
-def digests(ckpt: Checkpoint, progress: Callable[[], None] = lambda: None) -> dict[tuple[int, str, int], Digest]:
-    out = {}
-    for op in ckpt.operators:
-        for sp in op.partitions:
-            prefix = op.store_info(sp.store_name).num_cols_prefix_key
-            out[(sp.operator_id, sp.store_name, sp.partition)] = digest_partition(
-                sp, ckpt.provider_class, ckpt.state_version, ckpt.conf, prefix, partition_uid(ckpt, sp)
-            )[0]
-            progress()
+def digests(
+    ckpts: list[Checkpoint], jobs: int = 1, progress: Callable[[DigestResult], None] = lambda r: None,
+    on_plan: Callable[[int], None] = lambda n: None,
+) -> list[dict[Key, Digest]]:
+    """Each checkpoint's digests per (operator, store, partition); the store partitions of all of
+    them read ``jobs`` at a time (``on_plan`` hears how many there are first)."""
+    keyed = [(i, (sp.operator_id, sp.store_name, sp.partition), digest_task(c, sp))
+             for i, c in enumerate(ckpts) for sp in c.store_partitions()]
+    on_plan(len(keyed))
+    done = digest_partitions([t for _, _, t in keyed], jobs, progress)
+    out: list[dict[Key, Digest]] = [{} for _ in ckpts]
+    for (i, key, _), result in zip(keyed, done):
+        out[i][key] = result.digest
     return out
 
 
-def verify(a: Location, b: Location, progress: Callable[[], None] = lambda: None) -> dict[str, Any]:
+def verify(
+    a: Location, b: Location, progress: Callable[[DigestResult], None] = lambda r: None, jobs: int = 1,
+    on_plan: Callable[[int], None] = lambda n: None,
+) -> dict[str, Any]:
     ca, cb = load_checkpoint(a), load_checkpoint(b)
-    da, db = digests(ca, progress), digests(cb, progress)
+    da, db = digests([ca, cb], jobs, progress, on_plan)
     differences = []
     for key in sorted(set(da) | set(db)):
         left, right = da.get(key), db.get(key)
@@ -78,13 +86,15 @@ def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
     v = sub.add_parser("verify", parents=[common], help="compare the state of two checkpoints")
     v.add_argument("a", metavar="A")
     v.add_argument("b", metavar="B")
+    add_jobs_argument(v)
     v.set_defaults(run=run)
 
 
 def run(args: argparse.Namespace, ctx: Any) -> int:
     from ..errors import VerificationFailed
 
-    result = verify(ctx.open(args.a), ctx.open(args.b), progress=ctx.progress.step)
+    result = verify(ctx.open(args.a), ctx.open(args.b), progress=ctx.progress.step, jobs=checked_jobs(args.jobs),
+                    on_plan=ctx.progress.start)
     ctx.progress.close()
     ctx.emit(result, render(result))
     return 0 if result["identical"] else VerificationFailed.exit_code

@@ -142,10 +142,14 @@ def test_the_guess_from_the_command_line(tmp_path: Path):
     assert not guess(["convert", str(few), "out", "--to", "rocksdb", "-j", "2"])
     assert not guess(["convert", str(many), "out", "--to", "rocksdb", "-j", "1"])
     assert not guess(["convert", str(many), "out", "--to", "rocksdb", "-j", "x"])  # argparse refuses it
-    assert not guess(["convert", str(many), "out", "--to", "rocksdb", "-j", "2", "--dry-run"])
+    assert guess(["convert", str(many), "out", "--to", "rocksdb", "-j", "2", "--dry-run"])  # the plan digests all
+    assert not guess(["import", str(archive), "out", "--to", "hdfs", "-j", "2", "--dry-run"])  # reads the manifest only
     assert not guess(["convert", str(many), "--help"])
-    assert not guess(["inspect", str(many)])
-    assert not guess(["verify", str(many), str(many)])
+    assert not guess(["inspect", str(many), "-j", "2"])  # metadata only
+    assert guess(["inspect", str(many), "--rows", "-j", "2"])
+    assert not guess(["inspect", str(few), "--rows", "-j", "2"])
+    assert guess(["verify", str(many), str(few), "-j", "2"])
+    assert not guess(["verify", str(many), str(many), "-j", "1"])
     assert not guess([])
 
 
