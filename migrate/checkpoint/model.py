@@ -242,7 +242,10 @@ def load_checkpoint(loc: Location) -> Checkpoint:
         )
     if "offsets" not in root or "metadata" not in root:
         missing = " and ".join(n for n in ("metadata", "offsets") if n not in root)
-        raise CorruptInput(f"not a streaming checkpoint: no {missing} here", loc.describe())
+        hint = ""
+        if "manifest.json" in root and "state" in root:  # the name migrate.archive.manifest.MANIFEST_NAME
+            hint = " (it looks like a stateshift archive: `stateshift import ARCHIVE DST --to ... --dry-run` checks and describes one)"
+        raise CorruptInput(f"not a streaming checkpoint: no {missing} here{hint}", loc.describe())
     query = parse_query_metadata(metadata_text, loc.describe("metadata"))
     offsets_listing = loc.list_dir("offsets")
     commits_listing = loc.list_dir("commits") if "commits" in root else {}

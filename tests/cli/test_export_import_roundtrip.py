@@ -219,3 +219,16 @@ def test_both_providers_export_the_same_rows_in_the_same_order(tmp_path):
             str(f.relative_to(archive)): pq.read_table(f, columns=["key", "value"]).to_pylist() for f in sorted(archive.rglob("*.parquet"))
         }
     assert tables["greenhouse_totals_hdfs"] == tables["greenhouse_totals_rocksdb"]
+
+
+def test_an_archive_given_where_a_checkpoint_belongs_is_named_as_one(tmp_path):
+    archive = tmp_path / "archive"
+    ok(stateshift("export", str(DEMO / "greenhouse_totals_hdfs"), str(archive)))
+    before = tree_digest(archive)
+    for args in (("inspect", str(archive)), ("verify", str(archive), str(DEMO / "greenhouse_totals_hdfs")),
+                 ("convert", str(archive), str(tmp_path / "out"), "--to", "rocksdb")):
+        r = stateshift(*args)
+        assert r.returncode == 3, r.stderr
+        assert "not a streaming checkpoint" in r.stderr and "looks like a stateshift archive" in r.stderr, r.stderr
+        assert "stateshift import" in r.stderr and len(r.stderr.strip().splitlines()) == 1, r.stderr
+    assert tree_digest(archive) == before and not (tmp_path / "out").exists()
