@@ -47,7 +47,10 @@ def load_manifest(archive: Location) -> Manifest:
     if MANIFEST_NAME not in root:
         if not root and not archive.exists(""):
             raise CorruptInput("archive directory does not exist", archive.describe())
-        raise CorruptInput(f"no {MANIFEST_NAME} here: not a stateshift archive, or its export did not finish", archive.describe())
+        hint = ""
+        if "offsets" in root and "metadata" in root:
+            hint = " (it looks like a streaming checkpoint: `stateshift convert` moves one, `stateshift export` archives it)"
+        raise CorruptInput(f"no {MANIFEST_NAME} here: not a stateshift archive, or its export did not finish{hint}", archive.describe())
     where = archive.describe(MANIFEST_NAME)
     manifest = parse_manifest(archive.read_text(MANIFEST_NAME), where)
     seen: set[str] = set()

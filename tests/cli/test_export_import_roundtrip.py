@@ -232,3 +232,10 @@ def test_an_archive_given_where_a_checkpoint_belongs_is_named_as_one(tmp_path):
         assert "not a streaming checkpoint" in r.stderr and "looks like a stateshift archive" in r.stderr, r.stderr
         assert "stateshift import" in r.stderr and len(r.stderr.strip().splitlines()) == 1, r.stderr
     assert tree_digest(archive) == before and not (tmp_path / "out").exists()
+
+
+def test_a_checkpoint_given_to_import_is_named_as_one(tmp_path):
+    r = stateshift("import", str(DEMO / "greenhouse_totals_hdfs"), str(tmp_path / "out"), "--to", "rocksdb")
+    assert r.returncode == 3, r.stderr
+    assert "not a stateshift archive" in r.stderr and "looks like a streaming checkpoint" in r.stderr, r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1 and not (tmp_path / "out").exists()
