@@ -32,6 +32,8 @@ def main(argv: list[str]) -> int:
     spark = sc.local_session("stateshift-engine35-run", scratch)
     try:
         mod = importlib.import_module(module)
+        if name.startswith("buoy_jvm"):  # the JVM group functions: compiled into this session
+            mod.install_java_functions(spark, Path(scratch) / "java")
         if hasattr(mod, "run_named"):
             out = mod.run_named(spark, name, input_dir, checkpoint, provider)
         else:

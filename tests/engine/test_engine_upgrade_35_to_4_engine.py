@@ -15,7 +15,8 @@ venv (``STATESHIFT_ENGINE35_PYTHON``, else ``.venv35/bin/python`` of this checko
   schema files with nullable value fields, and the 4.x engine continues both with exactly the
   output the 3.5 engine gives when it continues the untouched checkpoint itself;
 * the other operators (deduplication, deduplication within the watermark, windows, session
-  windows, deduplication chained with windows, per-group state with an event-time timeout): moved
+  windows, deduplication chained with windows, per-group state with an event-time timeout through
+  the Python API and, in state format 1, the JVM API): moved
   to the other provider with ``convert --engine-version 4.x`` and rebuilt on their own provider
   with ``export`` / ``import --engine-version 4.x``, the 4.x engine continues both with exactly
   the output of the 3.5 engine continuing the untouched checkpoint itself.
@@ -167,12 +168,21 @@ OTHER_OPERATORS = {
     "session-windows": ("test_session_window_engine", "bay_sessions", "hdfs", "rocksdb"),
     "dedup-then-windows": ("scenarios_more", "ping_dedup_then_windows", "hdfs", "rocksdb"),
     "per-group-state": ("scenarios_more", "buoy_pandas_event_timeout_v2", "rocksdb", "hdfs"),
+    "per-group-state-jvm": ("scenarios_more", "buoy_jvm_event_timeout_v1", "hdfs", "rocksdb"),
 }
 
 
+@pytest.fixture(scope="module")
+def java_functions(spark, tmp_path_factory):
+    """The Java group functions of the JVM flatMapGroupsWithState scenario, added as a jar."""
+    return sm.install_java_functions(spark, tmp_path_factory.mktemp("java"))
+
+
 @pytest.mark.parametrize("case", list(OTHER_OPERATORS))
-def test_3_5_operator_moved_for_4_continues_on_4_as_3_5_continues_it(spark, tmp_path: Path, case: str) -> None:
+def test_3_5_operator_moved_for_4_continues_on_4_as_3_5_continues_it(spark, request, tmp_path: Path, case: str) -> None:
     module, name, source, target = OTHER_OPERATORS[case]
+    if name.startswith("buoy_jvm"):
+        request.getfixturevalue("java_functions")
     mod = importlib.import_module(module)
     scenario = mod.SCENARIOS[name]
     run_on_4 = getattr(mod, "run", None) or sc.run_query
