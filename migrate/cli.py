@@ -30,7 +30,7 @@ from typing import Any
 # workers' fork server first, and these imports took 0.17 s of the 0.26 s before it could
 # (measured with ``python -X importtime``).
 from . import __version__, workers
-from .errors import StateshiftError, os_failure
+from .errors import StateshiftError, SystemFailure, os_failure
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -215,6 +215,33 @@ def _mallopt_thresholds() -> None:
     libc.mallopt(-1, MALLOC_TRIM_THRESHOLD)
 
 
+#: the least address space (``RLIMIT_AS``, ``ulimit -v``) a command starts with: every process
+#: of the tool maps 0.52-0.55 GB before its rows grow it (VmPeak of the command, its fork server
+#: and workers, 10M-key convert both ways, export and import, measured here; most of it thread
+#: stacks and allocator arenas reserved by RocksDB, Arrow and glibc, not memory in use), and
+#: under a smaller limit the libraries fail in ways no message can name: observed, a thread that
+#: cannot start left the pool waiting forever, RocksDB's Rust binding deadlocked dropping an
+#: iterator (deaf to SIGTERM and Ctrl-C) or aborted the process. The same commands ran at 0.7 GB.
+MIN_ADDRESS_SPACE = 1 << 30
+
+
+def address_space_refusal() -> str | None:
+    """Why this process's address-space limit is too small to start (None: no limit, or enough)."""
+    try:
+        import resource
+    except ImportError:  # not on a POSIX system
+        return None
+    soft, _ = resource.getrlimit(resource.RLIMIT_AS)
+    if soft == resource.RLIM_INFINITY or soft >= MIN_ADDRESS_SPACE:
+        return None
+    return (
+        f"this process may map only {soft / (1 << 20):.0f} MiB of address space (ulimit -v); the libraries "
+        f"stateshift uses reserve about 550 MiB per process before any row, and under such a limit they hang or "
+        f"abort instead of failing cleanly: raise it to at least {MIN_ADDRESS_SPACE >> 20} MiB or unlimited "
+        "(to cap memory, use a container's memory limit, which limits memory in use, not address space)"
+    )
+
+
 class Terminated(KeyboardInterrupt):
     """SIGTERM (``kill PID``, a container or job runner stopping the command), raised where the
     command is, so it stops as on Ctrl-C: its workers are ended and the target stays marked
@@ -242,6 +269,10 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def _command_line(argv: list[str]) -> int:
+    refusal = address_space_refusal()  # before anything starts a thread or maps a library
+    if refusal is not None:
+        print(f"stateshift: error: {refusal}", file=sys.stderr)
+        return SystemFailure.exit_code
     prefer_arrow_pool()  # before the fork server starts and before pyarrow is imported
     no_blas_pool()  # likewise, before numpy is imported
     fixed_malloc = keep_freed_memory(this_process=False)  # before the fork server starts

@@ -233,3 +233,24 @@ def test_a_command_killed_outright_takes_its_fork_server_and_workers_with_it(tmp
     _assert_unusable(dst)
     resumed = stateshift("convert", str(checkpoints["hdfs"]), str(dst), "--to", "rocksdb", "-j", "2", "--resume")
     assert resumed.returncode == 0, resumed.stderr
+
+
+def _run_with_address_space(limit: int, *args: str) -> subprocess.CompletedProcess:
+    def cap() -> None:
+        resource.setrlimit(resource.RLIMIT_AS, (limit, limit))
+
+    return subprocess.run([sys.executable, "-m", "migrate", *args], capture_output=True, text=True, cwd=REPO,
+                          timeout=120, preexec_fn=cap)
+
+
+def test_an_address_space_limit_too_small_to_run_is_refused_before_anything_starts(tmp_path, checkpoints):
+    """Under ``ulimit -v`` of 400 MiB the libraries hung or aborted (observed); the command now
+    refuses at once, exit 8, one line saying what to raise, and writes nothing."""
+    dst = tmp_path / "out"
+    r = _run_with_address_space(400 << 20, "convert", str(checkpoints["hdfs"]), str(dst), "--to", "rocksdb", "-j", "2")
+    assert r.returncode == 8, r.stderr
+    line = _one_error_line(r)
+    assert "400 MiB of address space (ulimit -v)" in line and "at least 1024 MiB" in line, line
+    assert not dst.exists()
+    ok = _run_with_address_space(1536 << 20, "convert", str(checkpoints["hdfs"]), str(dst), "--to", "rocksdb", "-j", "2")
+    assert ok.returncode == 0, ok.stderr
