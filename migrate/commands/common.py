@@ -63,14 +63,19 @@ def guard_target(src: Location, dst: Location) -> None:
         raise UnsafeTarget("target contains the source checkpoint; choose a location outside it", dst.display)
 
 
+def not_empty(dst: Location, existing: dict[str, Any]) -> UnsafeTarget:
+    """The refusal of a non-empty target without ``--overwrite``."""
+    return UnsafeTarget(
+        f"target is not empty ({len(existing)} entries, e.g. {sorted(existing)[0]}); pass --overwrite to replace it",
+        dst.display,
+    )
+
+
 def prepare_target(dst: Location, overwrite: bool) -> None:
     """Refuse a non-empty target unless ``overwrite``; then mark it incomplete before any state."""
     existing = dst.list_dir("")
     if existing and not overwrite:
-        raise UnsafeTarget(
-            f"target is not empty ({len(existing)} entries, e.g. {sorted(existing)[0]}); pass --overwrite to replace it",
-            dst.display,
-        )
+        raise not_empty(dst, existing)
     if existing:
         for name in existing:
             dst.remove(name, recursive=True)

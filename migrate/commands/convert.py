@@ -83,6 +83,7 @@ class ConvertReport:
     source_engine: dict[str, Any] = field(default_factory=dict)  # checkpoint.engine.EngineInference.to_json()
     target_engine: str = "4.x"
     schema_rewrites: list[str] = field(default_factory=list)  # made nullable for the target engine
+    target_action: str | None = None  # a dry run: what the run would do with DST (journal.plan_target)
 
     @property
     def rows(self) -> int:
@@ -96,6 +97,7 @@ class ConvertReport:
             "target_engine": self.target_engine,
             "schema_rewrites": self.schema_rewrites,
             "dry_run": self.dry_run,
+            **({"target_action": self.target_action} if self.dry_run else {}),
             "source": self.source,
             "target": self.target,
             "query_id": self.query_id,
@@ -202,12 +204,6 @@ def convert(
         schema_rewrites=schema_rewrites,
     )
     partitions = ckpt.store_partitions()
-    on_plan(len(partitions))
-    if dry_run:
-        report.partitions = dry_run_partitions(ckpt, target.name, progress, jobs)
-        report.files = plan_files(ckpt, target_class, fmt, schema_rewrites)
-        return report
-
     identity = {
         "command": "convert",
         "source": src.display,
@@ -218,6 +214,14 @@ def convert(
         "checkpoint_format": fmt,
         "target_engine": engine,
     }
+    if dry_run:  # the target checked as the run would check it, before the partitions are read
+        report.target_action = journal.plan_target(dst, identity, overwrite=overwrite, resume=resume)
+    on_plan(len(partitions))
+    if dry_run:
+        report.partitions = dry_run_partitions(ckpt, target.name, progress, jobs)
+        report.files = plan_files(ckpt, target_class, fmt, schema_rewrites)
+        return report
+
     tasks = tasks_for(ckpt, dst, target.name, dict(ckpt.conf), partitions, target_format=fmt, engine=engine)
     results = run_journaled(dst, identity, tasks, resume=resume, overwrite=overwrite, jobs=jobs, progress=progress)
     report.partitions = [r.to_json() for r in results]

@@ -67,6 +67,7 @@ from .common import (
     start_workers_early,
 )
 from .convert import _write_with_crc, crc_rel, target_names
+from .render import target_verdict
 
 _OFFSET_FILE = re.compile(r"^offsets/(\d+)$")
 _OFFSET_CRC = re.compile(r"^offsets/\.(\d+)\.crc$")
@@ -177,6 +178,7 @@ class ImportReport:
     partitions: list[dict[str, Any]] = field(default_factory=list)
     files: list[dict[str, Any]] = field(default_factory=list)
     checkpoint_format: dict[str, int] = field(default_factory=lambda: {"source": 1, "target": 1})  # checkpoint/uids.py
+    target_action: str | None = None  # a dry run: what the run would do with DST (journal.plan_target)
 
     @property
     def rows(self) -> int:
@@ -189,6 +191,7 @@ class ImportReport:
         return {
             "command": "import",
             "dry_run": self.dry_run,
+            **({"target_action": self.target_action} if self.dry_run else {}),
             "archive": self.archive,
             "target": self.target,
             "query_id": self.query_id,
@@ -414,6 +417,19 @@ def import_archive(
         if (d.operator, d.store) not in seen:
             seen.add((d.operator, d.store))
             target.check_writable(store_properties(archive, d), archive.describe(d.path))
+    identity = {
+        "command": "import",
+        "archive": archive.display,
+        "query_id": manifest.query_id,
+        "batch": manifest.batch_id,
+        "target_provider": target_class,
+        "manifest_sha256": hashlib.sha256(archive.read_bytes(MANIFEST_NAME)).hexdigest(),
+        "new_query_id": new_query_id,
+        "target_engine": engine,
+        "checkpoint_format": fmt,
+    }
+    if dry_run:  # the target checked as the run would check it
+        report.target_action = journal.plan_target(dst, identity, overwrite=overwrite, resume=resume)
     on_plan(len(tasks))
     if dry_run:
         for t in tasks:
@@ -429,17 +445,6 @@ def import_archive(
                 f.update(action="rewrite", change="value schema made nullable for engine 4.x")
         return report
 
-    identity = {
-        "command": "import",
-        "archive": archive.display,
-        "query_id": manifest.query_id,
-        "batch": manifest.batch_id,
-        "target_provider": target_class,
-        "manifest_sha256": hashlib.sha256(archive.read_bytes(MANIFEST_NAME)).hexdigest(),
-        "new_query_id": new_query_id,
-        "target_engine": engine,
-        "checkpoint_format": fmt,
-    }
 
     def key_of(t: ImportTask) -> str:
         return journal.key(t.data_file.operator, t.data_file.store, t.data_file.partition)
@@ -513,6 +518,7 @@ def render(report: ImportReport) -> str:
             lines.append(f"  op {p['operator']} / {p['store']} / part {p['partition']}: {p['rows']} rows -> {', '.join(p['target_files'])}")
         for f in report.files:
             lines.append(f"  {f['action']:<7} {f['path']}" + (f"  ({f['change']})" if f.get("change") else ""))
+        lines.append(f"  {target_verdict(report.target_action)}")
     else:
         lines.append(f"  {len(report.partitions)} store partition(s), {report.rows} rows: written, read back, digests match the archive")
         lines.append(f"  {len(report.files)} checkpoint file(s) written; metadata last")

@@ -26,7 +26,7 @@ from ..digest import Digest
 from ..errors import CorruptInput, UnsafeTarget
 from ..providers.base import WrittenFile
 from ..storage import TEMP_PREFIX, Location
-from .common import prepare_target
+from .common import not_empty, prepare_target
 
 T = TypeVar("T")
 
@@ -92,6 +92,18 @@ def resume_journal(dst: Location, identity: dict[str, Any]) -> dict[str, Any] | 
         )
     journal.setdefault("partitions", {})
     return journal
+
+
+def plan_target(dst: Location, identity: dict[str, Any], *, overwrite: bool, resume: bool) -> str:
+    """What the run would do with ``dst``, checked as :func:`run_with_journal` checks it, without
+    writing: ``"create"`` (absent or empty), ``"replace"`` (``--overwrite``) or ``"resume"``; a
+    target the run would refuse is refused here with the same error."""
+    if resume:
+        return "resume" if resume_journal(dst, identity) is not None else "create"
+    existing = dst.list_dir("")
+    if existing and not overwrite:
+        raise not_empty(dst, existing)
+    return "replace" if existing else "create"
 
 
 def finish(dst: Location) -> None:

@@ -9,6 +9,14 @@ def _short(cls: str | None) -> str:
     return cls.rsplit(".", 1)[-1] if cls else "(unset)"
 
 
+#: a dry run's ``target_action`` (``journal.plan_target``), as the plan's summary says it
+_TARGET_ACTIONS = {"create": "create", "replace": "replace (--overwrite)", "resume": "finish (--resume)"}
+
+
+def target_verdict(action: str | None) -> str:
+    return f"a run would {_TARGET_ACTIONS.get(action or '', 'write')} the target"
+
+
 def render_convert(report: Any) -> str:
     d = report.to_json()
     head = "PLAN (dry run, nothing written)" if d["dry_run"] else "CONVERTED"
@@ -55,6 +63,9 @@ def render_convert(report: Any) -> str:
         lines.append(f"{mark} {f['path']} ({f['action']}, {f['bytes']} B)")
     total_bytes = sum(int(p["source_bytes"]) for p in d["partitions"])
     lines.append("")
-    verdict = "would write" if d["dry_run"] else ("all store partitions read back and verified" if d["verified"] else "NOT verified")
+    verdict = (
+        target_verdict(d.get("target_action"))
+        if d["dry_run"] else ("all store partitions read back and verified" if d["verified"] else "NOT verified")
+    )
     lines.append(f"summary: {len(d['partitions'])} store partitions, {d['rows']} rows, {total_bytes} source bytes; {verdict}")
     return "\n".join(lines)
