@@ -47,6 +47,7 @@ from ..archive.writer import (
 )
 from ..checkpoint.engine import infer_engine
 from ..checkpoint.files import CopyFile, verbatim_files
+from ..checkpoint.schemas import check_schemas
 from ..checkpoint.logs import CODEC_CONF, PROVIDER_CONF
 from ..checkpoint.model import HDFS_CLASS, Checkpoint, load_checkpoint
 from ..checkpoint.uids import (
@@ -261,6 +262,7 @@ def export(
     check_chain_against_commits(ckpt)  # format 2: the lineage agrees with the commit log
 
     files = kept_checkpoint_files(ckpt, latest)
+    check_schemas(ckpt, files)  # an unreadable schema file stops the run, as in a convert
     paths = [f.rel for f in files]
     report = ExportReport(source=src.display, archive=archive.display)
     stores: dict[tuple[int, str], tuple[str | None, bytes | None, RowDecoder]] = {}

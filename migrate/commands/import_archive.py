@@ -40,7 +40,8 @@ from ..checkpoint.engine import (
     refuse_target,
     upgrade_schema_rewrites,
 )
-from ..checkpoint.files import is_operator_metadata_v2, point_schema_paths_at
+from ..checkpoint.files import CopyFile, is_operator_metadata_v2, point_schema_paths_at
+from ..checkpoint.schemas import schema_files
 from ..checkpoint.logs import (
     PROVIDER_CONF,
     CommitEntry,
@@ -55,6 +56,7 @@ from ..digest import Digest, digest_batches
 from ..errors import CorruptInput, VerificationFailed
 from ..providers import class_name_for, provider_for
 from ..providers.base import ReadContext, StoreDir, WriteContext, WrittenFile
+from ..rows.schema import parse_state_schema_file
 from ..storage import Location
 from . import journal
 from .common import (
@@ -282,6 +284,8 @@ def _engine_plan(
     refuse_target(source, target, describe)
     if target == SPARK_35:
         refuse_for_35(offsets, commits, conf, describe)
+    for rel in schema_files([CopyFile(r, 0) for r in files.early]):  # as convert and export check them
+        parse_state_schema_file(_archived(archive, rel), describe(rel))
     rewrites = upgrade_schema_rewrites(source.family, target, files.early)
     for rel in rewrites:
         nullable_value_schema(_archived(archive, rel), describe(rel))

@@ -187,3 +187,34 @@ def test_a_write_that_loses_a_row_is_caught_and_the_read_is_shown_to_be_right(tm
     assert found[1] == found[3] and found[2] == found[4], "the Parquet read should match the archive"
     assert int(found[5]) == int(found[1]) - 1 and found[6] != found[2]
     _nothing_usable(dst)
+
+
+def test_a_sealed_archive_holding_an_unreadable_schema_file_is_refused_before_writing(tmp_path, pristine):
+    """An archive whose manifest was sealed over a damaged schema file (as an older export could
+    write it: export now refuses such a source) passes the file check; the import parses every
+    archived schema file, as convert does, and refuses before writing."""
+    import hashlib
+    import shutil
+
+    from migrate.archive.manifest import seal
+
+    archive = tmp_path / "archive"
+    shutil.copytree(pristine, archive)
+    rel = "checkpoint/state/0/0/_metadata/schema"
+    damaged = (archive / rel).read_bytes()[:40]
+    (archive / rel).write_bytes(damaged)
+    m = archive / "manifest.json"
+    body = json.loads(m.read_text())
+    entry = next(f for f in body["checkpoint_files"] if f["path"] == rel)
+    entry.update(bytes=len(damaged), sha256=hashlib.sha256(damaged).hexdigest())
+    body.pop("manifest_sha256")
+    body["manifest_sha256"] = seal(body)
+    m.write_text(json.dumps(body, indent=2))
+
+    for extra in ((), ("--dry-run",)):
+        dst = tmp_path / f"restored{len(extra)}"
+        proc = stateshift("import", str(archive), str(dst), "--to", "rocksdb", *extra)
+        assert proc.returncode == CORRUPT, proc.stderr
+        lines = proc.stderr.strip().splitlines()
+        assert len(lines) == 1 and rel in lines[0] and "Traceback" not in proc.stderr, proc.stderr
+        assert not dst.exists()

@@ -139,7 +139,9 @@ def test_bad_source_is_refused_cleanly(tmp_path, damage, code):
     expected = damage(src)
     before = tree_digest(src)
     dst = tmp_path / "out"
-    for args in (["convert", str(src), str(dst), "--to", "rocksdb"], ["convert", str(src), str(dst), "--to", "rocksdb", "--dry-run"]):
+    archive = tmp_path / "archive"
+    for args in (["convert", str(src), str(dst), "--to", "rocksdb"], ["convert", str(src), str(tmp_path / "plan"), "--to", "rocksdb", "--dry-run"],
+                 ["export", str(src), str(archive)]):
         r = stateshift(*args)
         assert r.returncode == code, (r.returncode, r.stderr)
         lines = r.stderr.strip().splitlines()
@@ -148,6 +150,7 @@ def test_bad_source_is_refused_cleanly(tmp_path, damage, code):
         assert str(src) in lines[0] or "stateshift: error: " in lines[0]
         assert "Traceback" not in r.stderr
     assert tree_digest(src) == before
+    assert not (archive / "manifest.json").exists()  # an archive without its manifest is refused by import
     # nothing usable at the target: absent, or marked incomplete (metadata is not JSON)
     if (dst / "metadata").exists():
         with pytest.raises(json.JSONDecodeError):
