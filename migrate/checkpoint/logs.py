@@ -22,7 +22,7 @@ import re
 from dataclasses import dataclass
 from typing import Any
 
-from ..errors import CorruptInput
+from ..errors import CorruptInput, Unsupported
 
 PROVIDER_CONF = "spark.sql.streaming.stateStore.providerClass"
 CODEC_CONF = "spark.sql.streaming.stateStore.compression.codec"
@@ -41,11 +41,24 @@ def _json_line(line: str, what: str, where: str) -> dict[str, Any]:
     return value
 
 
-def _version(line: str, where: str) -> int:
+#: log entry formats this version reads and rewrites (observed: offsets v1 in 3.5 and 4.x, v2 with
+#: 4.x's ``offsetLog.formatVersion=2``; commits v1, v2 with state checkpoint format 2)
+KNOWN_LOG_VERSIONS = {"offsets": (1, 2), "commits": (1, 2)}
+
+
+def _version(line: str, where: str, log: str) -> int:
     m = _VERSION_LINE.match(line.strip())
     if not m:
         raise CorruptInput(f"first line {line[:20]!r} is not a log version like 'v1'", where)
-    return int(m.group(1))
+    version = int(m.group(1))
+    known = KNOWN_LOG_VERSIONS[log]
+    if version not in known:
+        raise Unsupported(
+            f"{log} entry format v{version} is not one this version of stateshift knows "
+            f"({', '.join(f'v{k}' for k in known)}); it would rewrite it without understanding it",
+            where,
+        )
+    return version
 
 
 @dataclass(frozen=True)
@@ -82,7 +95,7 @@ def parse_offsets(text: str, batch_id: int, where: str) -> OffsetEntry:
         lines = lines[:-1]
     if len(lines) < 2:
         raise CorruptInput("offsets entry is truncated: expected a version line and a metadata line", where)
-    version = _version(lines[0], where)
+    version = _version(lines[0], where, "offsets")
     metadata = _json_line(lines[1], "batch metadata (line 2)", where)
     if "conf" in metadata and not isinstance(metadata["conf"], dict):
         raise CorruptInput("batch metadata 'conf' is not a JSON object", where)
@@ -111,7 +124,7 @@ def parse_commit(text: str, batch_id: int, where: str) -> CommitEntry:
     lines = [line for line in text.split("\n") if line != ""]
     if len(lines) < 2:
         raise CorruptInput("commits entry is truncated: expected a version line and a JSON line", where)
-    version = _version(lines[0], where)
+    version = _version(lines[0], where, "commits")
     metadata = _json_line(lines[1], "commit metadata (line 2)", where)
     return CommitEntry(batch_id, version, metadata)
 

@@ -82,6 +82,20 @@ def malformed_commits_json(src):
     return f"commits/{f.name}"
 
 
+def unknown_offsets_log_format(src):
+    f = max((p for p in (src / "offsets").iterdir() if p.name.isdigit()), key=lambda p: int(p.name))
+    _drop_crc(f)
+    f.write_text("v9" + f.read_text()[2:])  # a format from a future engine: not rewritten blindly
+    return f"offsets/{f.name}: offsets entry format v9 is not one"
+
+
+def unknown_commits_log_format(src):
+    f = min((p for p in (src / "commits").iterdir() if p.name.isdigit()), key=lambda p: int(p.name))
+    _drop_crc(f)
+    f.write_text("v3" + f.read_text()[2:])
+    return f"commits/{f.name}: commits entry format v3"
+
+
 def unknown_provider_class(src):
     for f in (src / "offsets").iterdir():
         if f.name.isdigit():
@@ -128,6 +142,8 @@ CASES = [
     (malformed_offsets_json, CORRUPT),
     (malformed_commits_json, CORRUPT),
     (unknown_provider_class, UNSUPPORTED),
+    (unknown_offsets_log_format, UNSUPPORTED),
+    (unknown_commits_log_format, UNSUPPORTED),
     (not_a_checkpoint, CORRUPT),
     (empty_directory, CORRUPT),
 ]
