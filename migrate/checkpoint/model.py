@@ -112,8 +112,7 @@ class Checkpoint:
 
     @property
     def num_partitions(self) -> int | None:
-        value = self.conf.get(PARTITIONS_CONF)
-        return int(value) if value and value.isdigit() else None
+        return _pinned_partitions(self.conf)
 
     def store_partitions(self) -> list[StorePartition]:
         return [sp for op in self.operators for sp in op.partitions]
@@ -145,7 +144,7 @@ def _operator_metadata(loc: Location, rel: str, listing: dict[str, Entry]) -> di
     return value
 
 
-def _load_operator(loc: Location, op_id: int) -> Operator:
+def _load_operator(loc: Location, op_id: int, pinned_partitions: int | None = None) -> Operator:
     rel = f"state/{op_id}"
     listing = loc.list_dir(rel)
     meta_listing = loc.list_dir(f"{rel}/_metadata") if "_metadata" in listing else {}
@@ -167,6 +166,14 @@ def _load_operator(loc: Location, op_id: int) -> Operator:
                 f"operator metadata names {expected} partitions but partition directory {missing[0]} is missing",
                 loc.describe(f"{rel}/{missing[0]}"),
             )
+    limit, named_by = (int(expected), "operator metadata") if expected is not None else (pinned_partitions, "offsets log")
+    stray = [p for p in partitions if limit is not None and p >= limit]
+    if stray:  # a copy left by hand: moving it would give the target a partition the engine never reads
+        raise CorruptInput(
+            f"partition directory {stray[0]} is outside the {limit} partitions the {named_by} names "
+            "(a stray copy?); move it out of the checkpoint",
+            loc.describe(f"{rel}/{stray[0]}"),
+        )
     parts: list[StorePartition] = []
     for p in partitions:
         prel = f"{rel}/{p}"
@@ -186,6 +193,11 @@ def _load_operator(loc: Location, op_id: int) -> Operator:
         prefix = _session_prefix(loc, part0.dir.rel, part0.listing) if seen == ["default"] and part0 else 0
         stores = [StoreInfo(s, prefix) for s in seen]
     return Operator(op_id, name, tuple(stores), tuple(parts), meta)
+
+
+def _pinned_partitions(conf: dict[str, str]) -> int | None:
+    value = conf.get(PARTITIONS_CONF)
+    return int(value) if value and value.isdigit() else None
 
 
 def _session_prefix(loc: Location, part0: str, listing: dict[str, Entry]) -> int:
@@ -267,7 +279,7 @@ def load_checkpoint(loc: Location) -> Checkpoint:
     if "state" in root:
         state = loc.list_dir("state")
         for op_id in sorted(int(n) for n, e in state.items() if n.isdigit() and e.is_dir):
-            operators.append(_load_operator(loc, op_id))
+            operators.append(_load_operator(loc, op_id, _pinned_partitions(conf)))
     _refuse_unexplained_versions(operators, provider_for(provider_class), max(offsets))
     return Checkpoint(
         location=loc,

@@ -96,6 +96,11 @@ def unknown_commits_log_format(src):
     return f"commits/{f.name}: commits entry format v3"
 
 
+def stray_partition_directory(src):
+    shutil.copytree(_part(src, 1), _part(src, 5))  # the query has 2 partitions (pinned)
+    return "state/0/5: partition directory 5 is outside the 2 partitions"
+
+
 def unknown_provider_class(src):
     for f in (src / "offsets").iterdir():
         if f.name.isdigit():
@@ -142,6 +147,7 @@ CASES = [
     (malformed_offsets_json, CORRUPT),
     (malformed_commits_json, CORRUPT),
     (unknown_provider_class, UNSUPPORTED),
+    (stray_partition_directory, CORRUPT),
     (unknown_offsets_log_format, UNSUPPORTED),
     (unknown_commits_log_format, UNSUPPORTED),
     (not_a_checkpoint, CORRUPT),

@@ -268,3 +268,18 @@ def test_zip_member_bytes_are_a_real_zip(tmp_path: Path) -> None:
     _write(tmp_path, SPARK_35, {})
     with zipfile.ZipFile(io.BytesIO((tmp_path / "state/0/0/1.zip").read_bytes())) as z:
         assert "metadata" in z.namelist() and "CURRENT" in z.namelist()
+
+
+def test_a_stray_partition_of_a_35_checkpoint_is_refused_by_the_pinned_partition_count(tmp_path):
+    """3.5 writes no operator metadata, so the shuffle partitions pinned in the offsets log bound
+    the partition directories (2 in the fixture): a copied third one is refused, naming it."""
+    import shutil
+
+    from migrate.errors import CorruptInput
+
+    src = tmp_path / "checkpoint"
+    shutil.copytree(FIXTURES / "spark-3.5.9" / "agg_rocksdb" / "checkpoint", src)
+    assert load_checkpoint(open_location(str(src))).num_partitions == 2
+    shutil.copytree(src / "state" / "0" / "1", src / "state" / "0" / "2")
+    with pytest.raises(CorruptInput, match=r"state/0/2: partition directory 2 is outside the 2 partitions the offsets log names"):
+        load_checkpoint(open_location(str(src)))
