@@ -94,7 +94,12 @@ def os_failure(exc: OSError, action: str, where: str | None = None) -> SystemFai
     meaning = _OS_MEANING.get(code) if code is not None else None
     detail = meaning or (exc.strerror or str(exc) or type(exc).__name__)
     name = f" ({errno.errorcode[code]})" if code in errno.errorcode else ""
-    return SystemFailure(f"could not {action}: {detail}{name}{scratch_hint(where or '')}", where)
+    hint = _FILE_SIZE_HINT if code == errno.EFBIG else scratch_hint(where or "")
+    return SystemFailure(f"could not {action}: {detail}{name}{hint}", where)
+
+
+#: a file past the process's size limit is not a full disk: more room would not help
+_FILE_SIZE_HINT = "; a file size limit is set for this process (ulimit -f): raise it or remove it"
 
 
 #: words of RocksDB's ``IO error`` statuses (the ``strerror`` of the failed call) for a machine
@@ -110,7 +115,8 @@ def library_failure(exc: BaseException, action: str, where: str | None = None) -
     text = " ".join(str(exc).split())
     if not (text.startswith("IO error") and any(w in text for w in _MACHINE_WORDS)):
         return None
-    return SystemFailure(f"could not {action}: RocksDB: {text}{scratch_hint(text)}", where)
+    hint = _FILE_SIZE_HINT if "File too large" in text else scratch_hint(text)
+    return SystemFailure(f"could not {action}: RocksDB: {text}{hint}", where)
 
 
 def scratch_hint(text: str) -> str:

@@ -50,7 +50,10 @@ def _norm(loc: Location) -> tuple[str, str]:
 
 
 def guard_target(src: Location, dst: Location) -> None:
-    """Refuse a target equal to, inside, or containing the source."""
+    """Refuse a target equal to, inside, or containing the source, and a local target that is a
+    file, not a directory."""
+    if dst.is_local and os.path.lexists(dst.root) and not os.path.isdir(dst.root):
+        raise UnsafeTarget("target exists and is not a directory; name a new or empty directory", dst.display)
     sp, spath = _norm(src)
     dp, dpath = _norm(dst)
     if sp != dp:

@@ -278,3 +278,14 @@ def test_bad_rocksdb_source_is_refused_cleanly(tmp_path, damage, code):
     if (dst / "metadata").exists():
         with pytest.raises(json.JSONDecodeError):
             json.loads((dst / "metadata").read_text())
+
+
+def test_a_target_that_is_a_file_is_refused_as_unsafe(tmp_path):
+    src = demo_copy("greenhouse_totals_hdfs", tmp_path)
+    dst = tmp_path / "report.txt"
+    dst.write_text("someone's file")
+    for args in (("convert", str(src), str(dst), "--to", "rocksdb"), ("export", str(src), str(dst)),
+                 ("convert", str(src), str(dst), "--to", "rocksdb", "--overwrite", "--dry-run")):
+        r = stateshift(*args)
+        assert r.returncode == UNSAFE and "is not a directory" in r.stderr, r.stderr
+    assert dst.read_text() == "someone's file"

@@ -154,3 +154,13 @@ def test_running_out_of_memory_is_named_with_its_partition():
         assert info.value.exit_code == 8
         assert str(info.value).startswith("/t/state/0/5: ran out of memory moving this store partition")
         assert "lower --jobs" in str(info.value)
+
+
+def test_a_file_size_limit_is_named_as_such_even_in_a_scratch_folder():
+    scratch_file = "/dev/shm/stateshift-rocksdb-w-123-ab/db/000009.sst"
+    full = os_failure(OSError(errno.ENOSPC, "No space left on device", scratch_file), "write this file")
+    assert "STATESHIFT_SCRATCH" in str(full) and "ulimit -f" not in str(full)
+    limited = os_failure(OSError(errno.EFBIG, "File too large", scratch_file), "write this file")
+    assert str(limited).endswith("(EFBIG); a file size limit is set for this process (ulimit -f): raise it or remove it")
+    rocks = library_failure(Exception(f"IO error: While appending to file: {scratch_file}: File too large"), "build", "/t/state/0/1")
+    assert rocks is not None and "ulimit -f" in str(rocks) and "STATESHIFT_SCRATCH" not in str(rocks)
