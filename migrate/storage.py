@@ -61,7 +61,7 @@ _QUERY_SECRET = re.compile(
     re.IGNORECASE,
 )
 # ``scheme://user[:password]@`` anywhere in free text (error messages quote endpoint URLs)
-_URL_USERINFO = re.compile(r"\b([A-Za-z][A-Za-z0-9+.-]*://)[^/\s@'\"<>]+@")
+_URL_USERINFO = re.compile(r"\b([A-Za-z][A-Za-z0-9+.-]*://)([^/\s@'\"<>]+)@")
 MASK = "***"
 
 # Object stores: no real directories (a write needs no parent; "making" one would cost a request,
@@ -74,6 +74,19 @@ def _is_secret_key(key: str) -> bool:
     return bool(_SECRET_KEYS.search(key)) and key.lower() not in _NOT_SECRET_KEYS
 
 
+#: Azure's URLs name the container before the ``@`` (``abfs://<container>@<account>.dfs...``)
+_CONTAINER_SCHEMES = {"abfs", "abfss", "az", "wasb", "wasbs"}
+
+
+def _names_a_container(parts: Any) -> bool:
+    """Whether the part before ``@`` is an Azure container name, not user info: an Azure scheme and
+    no password (a ``user:password@`` there is masked like anywhere else)."""
+    try:
+        return parts.scheme.lower() in _CONTAINER_SCHEMES and parts.password is None
+    except ValueError:
+        return False
+
+
 def mask_url(url: str) -> str:
     """Remove user info (``user:pass@``) and secret-looking query parameters from a URL."""
     if "://" not in url:
@@ -83,7 +96,7 @@ def mask_url(url: str) -> str:
     except ValueError:
         return MASK
     netloc = parts.netloc
-    if "@" in netloc:
+    if "@" in netloc and not _names_a_container(parts):
         netloc = MASK + "@" + netloc.rsplit("@", 1)[1]
     query = _QUERY_SECRET.sub(lambda m: m.group(1) + MASK, parts.query)
     return urlunsplit((parts.scheme, netloc, parts.path, query, parts.fragment))
@@ -131,7 +144,14 @@ def mask_text(text: str, secrets: list[str]) -> str:
     every URL in it."""
     for s in sorted((s for s in secrets if s and len(s) >= 4), key=len, reverse=True):
         text = text.replace(s, MASK)
-    return _URL_USERINFO.sub(lambda m: m.group(1) + MASK + "@", text)
+    return _URL_USERINFO.sub(_masked_userinfo, text)
+
+
+def _masked_userinfo(m: re.Match[str]) -> str:
+    scheme = m.group(1)[: -len("://")].lower()
+    if scheme in _CONTAINER_SCHEMES and ":" not in m.group(2):  # an Azure container name
+        return m.group(0)
+    return m.group(1) + MASK + "@"
 
 
 def secret_values(options: dict[str, Any]) -> list[str]:
@@ -591,6 +611,10 @@ class Location:
                     raise kind(f"{first.get('Code')}: {first.get('Message')} ({len(errors)} keys not deleted)")
 
 
+#: the package extra (pyproject.toml) that installs each scheme's fsspec driver
+_EXTRAS = {"s3": "s3", "s3a": "s3", "gs": "gcs", "gcs": "gcs", "abfs": "azure", "abfss": "azure", "az": "azure"}
+
+
 def open_location(url: str, storage_options: dict[str, Any] | None = None, readonly: bool = True) -> Location:
     """Open a local path or fsspec URL as a :class:`Location`.
 
@@ -613,10 +637,9 @@ def open_location(url: str, storage_options: dict[str, Any] | None = None, reado
         fs.invalidate_cache()
     except ImportError as exc:
         scheme = url.split("://", 1)[0]
-        raise UsageError(
-            f"{shown}: no filesystem driver for '{scheme}://' is installed "
-            f"(install the matching extra, for example: pip install 'stateshift[s3]')"
-        ) from exc
+        extra = _EXTRAS.get(scheme.lower())
+        how = f"pip install 'stateshift[{extra}]'" if extra else "install the fsspec driver for it"
+        raise UsageError(f"{shown}: no filesystem driver for '{scheme}://' is installed ({how})") from exc
     except Exception as exc:  # bad options, a server unreachable at connect time (ftp, sftp), ...
         detail = mask_text(" ".join(f"{type(exc).__name__}: {exc}".split()), secrets)[:300]
         raise UsageError(f"{shown}: cannot open this location: {detail}") from exc
