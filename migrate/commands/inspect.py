@@ -7,6 +7,7 @@ reports its row count and digest (reads all state; still writes nothing).
 from __future__ import annotations
 
 import argparse
+import sys
 from collections.abc import Callable
 from typing import Any
 
@@ -14,7 +15,7 @@ from ..checkpoint.engine import infer_engine
 from ..checkpoint.logs import CODEC_CONF, PARTITIONS_CONF
 from ..checkpoint.model import Checkpoint, StorePartition, load_checkpoint
 from ..checkpoint.uids import checkpoint_format, partition_uid
-from ..errors import StateshiftError
+from ..errors import CorruptInput, StateshiftError
 from ..storage import Location
 from .common import DigestResult, add_jobs_argument, checked_jobs, digest_partitions, digest_task
 
@@ -155,4 +156,12 @@ def run(args: argparse.Namespace, ctx: Any) -> int:
                    on_plan=ctx.progress.start)
     ctx.progress.close()
     ctx.emit(info, render(info))
+    broken = [(op["operator"], st["name"], p["partition"]) for op in info["operators"] for st in op["stores"]
+              for p in st["partitions"] if not p["rebuildable"]]
+    if broken:  # the report is printed; the exit code tells a script what a convert would meet
+        op, store, part = broken[0]
+        print(f"stateshift: error: {len(broken)} store partition(s) cannot be rebuilt at state version "
+              f"{info['state_version']} (first: operator {op} store {store} partition {part}; see PROBLEM above)",
+              file=sys.stderr)
+        return CorruptInput.exit_code
     return 0

@@ -289,3 +289,17 @@ def test_a_target_that_is_a_file_is_refused_as_unsafe(tmp_path):
         r = stateshift(*args)
         assert r.returncode == UNSAFE and "is not a directory" in r.stderr, r.stderr
     assert dst.read_text() == "someone's file"
+
+
+def test_inspect_reports_every_partition_and_exits_3_when_one_cannot_be_rebuilt(tmp_path):
+    """A pre-check script gets the full report and an exit code that says a convert would fail."""
+    src = demo_copy("greenhouse_totals_hdfs", tmp_path)
+    assert stateshift("inspect", str(src)).returncode == 0
+    gap_in_delta_chain(src)
+    r = stateshift("inspect", str(src), "--json")
+    assert r.returncode == CORRUPT, r.stderr
+    parts = {p["partition"]: p for op in json.loads(r.stdout)["operators"] for st in op["stores"] for p in st["partitions"]}
+    assert parts[0]["rebuildable"] is False and "is missing" in parts[0]["problem"] and parts[1]["rebuildable"] is True
+    lines = r.stderr.strip().splitlines()
+    assert len(lines) == 1 and "1 store partition(s) cannot be rebuilt" in lines[0] and "partition 0" in lines[0], r.stderr
+    assert stateshift("convert", str(src), str(tmp_path / "out"), "--to", "rocksdb").returncode == CORRUPT
