@@ -120,6 +120,7 @@ class PartitionResult:
     key_bytes: int
     value_bytes: int
     written: tuple[WrittenFile, ...] = ()
+    reused: bool = False  # --resume: written by the interrupted run, read back and matched
 
     @property
     def ok(self) -> bool:
@@ -139,6 +140,7 @@ class PartitionResult:
             "source_digest": self.source_digest.hexdigest,
             "target_digest": self.target_digest.hexdigest if self.target_digest else None,
             "verified": self.ok,
+            **({"reused": True} if self.reused else {}),
             "written": [{"path": w.rel, "bytes": w.size} for w in self.written],
         }
 
@@ -200,7 +202,7 @@ def reverify_partition(task: PartitionTask, expected: Digest) -> PartitionResult
     if back != expected:
         return None
     return PartitionResult(
-        task.source.operator_id, task.source.store_name, task.source.partition, expected, back, 0, 0, 0, ()
+        task.source.operator_id, task.source.store_name, task.source.partition, expected, back, 0, 0, 0, (), reused=True
     )
 
 

@@ -86,9 +86,16 @@ def resume_journal(dst: Location, identity: dict[str, Any]) -> dict[str, Any] | 
         journal = json.loads(dst.read_bytes(JOURNAL))
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         raise CorruptInput(f"resume journal is not valid JSON ({exc})", where) from exc
-    if not isinstance(journal, dict) or journal.get("identity") != identity:
+    if not isinstance(journal, dict) or not isinstance(journal.get("identity"), dict):
+        raise CorruptInput("resume journal has no identity of the run that wrote it", where)
+    if journal["identity"] != identity:
+        before = journal["identity"]
+        differ = [k for k in sorted(set(before) | set(identity)) if before.get(k) != identity.get(k)]
+        shown = "; ".join(f"{k} {_shown(before.get(k))} then, {_shown(identity.get(k))} now" for k in differ[:3])
         raise UnsafeTarget(
-            "--resume refused: the interrupted run into this target was for a different source, batch or provider", where
+            f"--resume refused: the interrupted run into this target differs from this one ({shown}); "
+            "rerun it as it was, or start again with --overwrite",
+            where,
         )
     journal.setdefault("partitions", {})
     return journal
@@ -104,6 +111,11 @@ def plan_target(dst: Location, identity: dict[str, Any], *, overwrite: bool, res
     if existing and not overwrite:
         raise not_empty(dst, existing)
     return "replace" if existing else "create"
+
+
+def _shown(value: Any) -> str:
+    text = "(none)" if value is None else str(value)
+    return text if len(text) <= 300 else text[:297] + "..."
 
 
 def finish(dst: Location) -> None:

@@ -47,7 +47,7 @@ def render_convert(report: Any) -> str:
     lines += ["", f"state version {d['state_version']} per operator / store / partition:"]
     lines.append(f"  {'op':>3} {'store':<26} {'part':>4} {'rows':>10} {'source bytes':>13}  {'digest':<32}  status")
     for p in d["partitions"]:
-        status = "plan" if d["dry_run"] else ("verified" if p.get("verified") else "MISMATCH")
+        status = "plan" if d["dry_run"] else ("MISMATCH" if not p.get("verified") else "reused" if p.get("reused") else "verified")
         lines.append(
             f"  {p['operator']:>3} {p['store']:<26.26} {p['partition']:>4} {p['rows']:>10} {p['source_bytes']:>13}  "
             f"{p['source_digest']:<32}  {status}"
@@ -62,7 +62,11 @@ def render_convert(report: Any) -> str:
         mark = "+" if f["action"] == "copy" else "~"
         lines.append(f"{mark} {f['path']} ({f['action']}, {f['bytes']} B)")
     total_bytes = sum(int(p["source_bytes"]) for p in d["partitions"])
+    reused = sum(1 for p in d["partitions"] if p.get("reused"))
     lines.append("")
+    if reused:
+        lines.append(f"resumed: {reused} store partition(s) reused from the interrupted run (read back, digest matched; "
+                     "their source bytes not counted), the rest written now")
     verdict = (
         target_verdict(d.get("target_action"))
         if d["dry_run"] else ("all store partitions read back and verified" if d["verified"] else "NOT verified")

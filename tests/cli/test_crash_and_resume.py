@@ -83,7 +83,7 @@ def test_resume_refuses_a_finished_or_foreign_target(tmp_path):
                          env={"STATESHIFT_CRASH_AT": "partition-written:1"})
     assert crashed.returncode == -9
     foreign = stateshift("convert", str(other), str(dst2), "--to", "rocksdb", "--force", "--resume")
-    assert foreign.returncode == 6 and "different source" in foreign.stderr
+    assert foreign.returncode == 6 and f"source {src} then, {other} now" in foreign.stderr, foreign.stderr
     # a directory of something else, without the placeholder metadata, is no run of ours to finish
     unrelated = tmp_path / "unrelated"
     unrelated.mkdir()

@@ -63,5 +63,14 @@ def test_a_dry_run_with_resume_checks_the_interrupted_run(tmp_path, archive):
     assert same.stdout.rstrip().endswith("a run would finish (--resume) the target"), same.stdout
     other = stateshift("convert", str(OTHER), str(dst), "--to", "rocksdb", "--dry-run", "--resume")
     assert other.returncode == 6 and "--resume refused" in other.stderr, other.stderr
+    assert f"source {SRC} then, {OTHER} now" in other.stderr, other.stderr  # says what differs
+    fmt = stateshift("convert", str(SRC), str(dst), "--to", "rocksdb", "--resume", "--checkpoint-format", "2")
+    assert fmt.returncode == 6 and "checkpoint_format 1 then, 2 now" in fmt.stderr, fmt.stderr
+    assert "source" not in fmt.stderr.split("differs from this one", 1)[1].split(")", 1)[0], fmt.stderr
     assert tree_digest(dst) == before
-    assert stateshift("convert", str(SRC), str(dst), "--to", "rocksdb", "--resume").returncode == 0
+    done = stateshift("convert", str(SRC), str(dst), "--to", "rocksdb", "--resume", "--json")
+    assert done.returncode == 0, done.stderr
+    parts = json.loads(done.stdout)["partitions"]  # the run died after every partition was written
+    assert parts and all(p["reused"] and p["verified"] for p in parts), parts
+    text = stateshift("verify", str(SRC), str(dst))
+    assert text.returncode == 0, text.stderr
