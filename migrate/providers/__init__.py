@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from ..errors import Unsupported
+from ..errors import Unsupported, UsageError
 from .base import Provider
 from .hdfs import HDFSProvider
 
@@ -37,5 +37,8 @@ def class_name_for(name_or_class: str) -> str:
     key = name_or_class.strip()
     if key.lower() in DEFAULT_CLASS:
         return DEFAULT_CLASS[key.lower()]
+    if "." not in key:  # neither a short name nor a class name: a typo, not unsupported input
+        names = ", ".join(sorted(DEFAULT_CLASS))
+        raise UsageError(f"--to {key!r}: not a provider name ({names}) or a provider class name")
     provider_for(key)
     return key

@@ -303,3 +303,12 @@ def test_inspect_reports_every_partition_and_exits_3_when_one_cannot_be_rebuilt(
     lines = r.stderr.strip().splitlines()
     assert len(lines) == 1 and "1 store partition(s) cannot be rebuilt" in lines[0] and "partition 0" in lines[0], r.stderr
     assert stateshift("convert", str(src), str(tmp_path / "out"), "--to", "rocksdb").returncode == CORRUPT
+
+
+def test_a_misspelt_provider_is_a_usage_error_and_an_unknown_class_unsupported(tmp_path):
+    src = demo_copy("greenhouse_totals_hdfs", tmp_path)
+    typo = stateshift("convert", str(src), str(tmp_path / "a"), "--to", "rocksbd")
+    assert typo.returncode == 2 and "not a provider name (hdfs, rocksdb)" in typo.stderr, typo.stderr
+    unknown = stateshift("convert", str(src), str(tmp_path / "b"), "--to", "org.example.TapeDriveStateStoreProvider")
+    assert unknown.returncode == UNSUPPORTED and "unknown state-store provider" in unknown.stderr, unknown.stderr
+    assert not (tmp_path / "a").exists() and not (tmp_path / "b").exists()
