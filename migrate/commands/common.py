@@ -34,7 +34,7 @@ from ..digest import Digest, DigestingIterator, digest_batches
 from ..errors import StateshiftError, SystemFailure, UnsafeTarget, UsageError, os_failure
 from ..providers import provider_for
 from ..providers.base import ReadContext, StoreDir, WriteContext, WrittenFile
-from ..storage import Location
+from ..storage import TEMP_PREFIX, Location
 
 INCOMPLETE_TEXT = (  # must start with checkpoint.model.INCOMPLETE_PREFIX
     "stateshift: this checkpoint is being written by stateshift and is NOT usable yet.\n"
@@ -74,11 +74,33 @@ def not_empty(dst: Location, existing: dict[str, Any]) -> UnsafeTarget:
     )
 
 
+#: the top-level names of what ``--overwrite`` may replace: a checkpoint (the engine's or one of
+#: ours, finished or not, its resume journal included) or an archive (finished or not)
+REPLACEABLE = {"metadata", ".metadata.crc", "offsets", "commits", "sources", "state", "_stateshift",
+               "manifest.json", "checkpoint"}
+
+
+def refuse_foreign_files(dst: Location, existing: dict[str, Any]) -> None:
+    """``--overwrite`` deletes DST's contents: refuse when they are not a checkpoint's or an
+    archive's (a mistyped path must not cost someone's directory)."""
+    foreign = sorted(n for n in existing if n not in REPLACEABLE and not n.startswith(TEMP_PREFIX))
+    if foreign:
+        raise UnsafeTarget(
+            f"--overwrite refused: the target holds {len(foreign)} entr{'y' if len(foreign) == 1 else 'ies'} that no "
+            f"checkpoint or archive has (e.g. {foreign[0]}); stateshift deletes only what it could have written: "
+            "check the path, and empty the directory yourself if it is the right one",
+            dst.display,
+        )
+
+
 def prepare_target(dst: Location, overwrite: bool) -> None:
-    """Refuse a non-empty target unless ``overwrite``; then mark it incomplete before any state."""
+    """Refuse a non-empty target unless ``overwrite`` (and then one holding anything but a
+    checkpoint or an archive); mark it incomplete before any state."""
     existing = dst.list_dir("")
     if existing and not overwrite:
         raise not_empty(dst, existing)
+    if existing:
+        refuse_foreign_files(dst, existing)
     if existing:
         for name in existing:
             dst.remove(name, recursive=True)

@@ -59,7 +59,7 @@ from ..errors import UnsafeTarget, UsageError
 from ..providers import provider_for
 from ..providers.base import ReadContext, StoreDir
 from ..storage import Location
-from .common import add_jobs_argument, checked_jobs, guard_target, run_tasks, start_workers_early
+from .common import add_jobs_argument, checked_jobs, guard_target, refuse_foreign_files, run_tasks, start_workers_early
 from .convert import refuse_if_running
 
 _LOG_FILE = re.compile(r"^(offsets|commits)/\.?(\d+)(\.crc)?$")
@@ -206,6 +206,8 @@ def _prepare_archive(archive: Location, overwrite: bool) -> None:
             f"archive target is not empty ({len(existing)} entries, e.g. {min(existing)}); pass --overwrite to replace it",
             archive.display,
         )
+    if existing:
+        refuse_foreign_files(archive, existing)
     for name in existing:
         archive.remove(name, recursive=True)
     archive.makedirs("")

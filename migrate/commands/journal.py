@@ -26,7 +26,7 @@ from ..digest import Digest
 from ..errors import CorruptInput, UnsafeTarget
 from ..providers.base import WrittenFile
 from ..storage import TEMP_PREFIX, Location
-from .common import not_empty, prepare_target
+from .common import not_empty, prepare_target, refuse_foreign_files
 
 T = TypeVar("T")
 
@@ -110,6 +110,8 @@ def plan_target(dst: Location, identity: dict[str, Any], *, overwrite: bool, res
     existing = dst.list_dir("")
     if existing and not overwrite:
         raise not_empty(dst, existing)
+    if existing:
+        refuse_foreign_files(dst, existing)
     return "replace" if existing else "create"
 
 

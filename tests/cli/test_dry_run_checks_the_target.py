@@ -8,6 +8,7 @@ is refused by the dry run with the run's own error (exit 6). Nothing is written 
 from __future__ import annotations
 
 import json
+import shutil
 
 import pytest
 from helpers import DEMO, stateshift, tree_digest
@@ -38,8 +39,7 @@ def test_a_dry_run_refuses_what_the_run_refuses_and_names_what_it_would_do(tmp_p
     assert json.loads(r.stdout)["target_action"] == "create" and not absent.exists()
 
     busy = tmp_path / "busy"
-    busy.mkdir()
-    (busy / "notes.txt").write_text("someone's notes")
+    shutil.copytree(OTHER, busy)  # an old checkpoint: what --overwrite may replace
     before = tree_digest(busy)
     refused = _plan(command, archive, busy)
     assert refused.returncode == 6, refused.stderr
@@ -74,3 +74,26 @@ def test_a_dry_run_with_resume_checks_the_interrupted_run(tmp_path, archive):
     assert parts and all(p["reused"] and p["verified"] for p in parts), parts
     text = stateshift("verify", str(SRC), str(dst))
     assert text.returncode == 0, text.stderr
+
+
+@pytest.mark.parametrize("command", ["convert", "import", "export"])
+def test_overwrite_deletes_only_what_a_checkpoint_or_archive_holds(tmp_path, archive, command):
+    """A mistyped DST with --overwrite must not cost someone's directory: one holding anything no
+    checkpoint or archive has is refused (exit 6), by the dry run too, and left as it was."""
+    home = tmp_path / "home"
+    (home / "photos").mkdir(parents=True)
+    (home / "notes.txt").write_text("someone's notes")
+    (home / "state").mkdir()  # a name a checkpoint has does not make the rest ours
+    before = tree_digest(home)
+    runs = {
+        "convert": [("convert", str(SRC), str(home), "--to", "rocksdb", "--overwrite"),
+                    ("convert", str(SRC), str(home), "--to", "rocksdb", "--overwrite", "--dry-run")],
+        "import": [("import", str(archive), str(home), "--to", "rocksdb", "--overwrite"),
+                   ("import", str(archive), str(home), "--to", "rocksdb", "--overwrite", "--dry-run")],
+        "export": [("export", str(SRC), str(home), "--overwrite")],
+    }[command]
+    for args in runs:
+        r = stateshift(*args)
+        assert r.returncode == 6, r.stderr
+        assert "--overwrite refused" in r.stderr and "e.g. notes.txt" in r.stderr and "2 entries" in r.stderr, r.stderr
+    assert tree_digest(home) == before

@@ -171,8 +171,12 @@ def test_targets_are_guarded(tmp_path):
     proc = stateshift("import", str(archive), str(busy), "--to", "hdfs")
     assert proc.returncode == 6 and (busy / "keep.txt").exists()
     assert stateshift("import", str(archive), str(archive / "inside"), "--to", "hdfs").returncode == 6
-    ok(stateshift("import", str(archive), str(busy), "--to", "hdfs", "--overwrite"))
-    assert not (busy / "keep.txt").exists()
+    # --overwrite replaces only what a checkpoint or an archive holds: someone's file is kept
+    proc = stateshift("import", str(archive), str(busy), "--to", "hdfs", "--overwrite")
+    assert proc.returncode == 6 and "--overwrite refused" in proc.stderr and (busy / "keep.txt").exists()
+    (busy / "keep.txt").unlink()
+    ok(stateshift("convert", str(src), str(busy), "--to", "rocksdb"))
+    ok(stateshift("import", str(archive), str(busy), "--to", "hdfs", "--overwrite"))  # the old checkpoint goes
 
 
 def test_demo_checkpoints_exist():
