@@ -305,8 +305,7 @@ def _main(argv: list[str]) -> int:
             secrets += secret_values(parse_storage_options(getattr(args, name, []) or []))
         return _run(args)
     except StateshiftError as exc:
-        print(f"stateshift: error: {mask_text(str(exc), secrets)}", file=sys.stderr)
-        return exc.exit_code
+        return _failed(args, exc.exit_code, "error", mask_text(str(exc), secrets))
     except BrokenPipeError:
         # the reader of our output went away (e.g. `| head`); the work itself is complete
         try:
@@ -321,9 +320,16 @@ def _main(argv: list[str]) -> int:
         return 130
     except OSError as exc:  # the machine failed a step that names no file of its own
         failure = os_failure(exc, "go on")
-        print(f"stateshift: error: {mask_text(str(failure), secrets)}", file=sys.stderr)
-        return failure.exit_code
+        return _failed(args, failure.exit_code, "error", mask_text(str(failure), secrets))
     except Exception as exc:  # noqa: BLE001 - the one place that turns crashes into an exit code
         text = mask_text(f"{type(exc).__name__}: {exc}", secrets)
-        print(f"stateshift: internal error: {' '.join(text.split())}", file=sys.stderr)
-        return 1
+        return _failed(args, 1, "internal error", " ".join(text.split()))
+
+
+def _failed(args: argparse.Namespace, code: int, kind: str, message: str) -> int:
+    """The one error line on stderr; with ``--json`` also one JSON document on stdout, so a script
+    that reads stdout gets an answer on failure too."""
+    print(f"stateshift: {kind}: {message}", file=sys.stderr)
+    if getattr(args, "json", False):
+        print(json.dumps({"command": getattr(args, "command", None), "error": {"exit_code": code, "kind": kind, "message": message}}))
+    return code

@@ -312,3 +312,14 @@ def test_a_misspelt_provider_is_a_usage_error_and_an_unknown_class_unsupported(t
     unknown = stateshift("convert", str(src), str(tmp_path / "b"), "--to", "org.example.TapeDriveStateStoreProvider")
     assert unknown.returncode == UNSUPPORTED and "unknown state-store provider" in unknown.stderr, unknown.stderr
     assert not (tmp_path / "a").exists() and not (tmp_path / "b").exists()
+
+
+def test_with_json_an_error_is_also_a_json_document_on_stdout(tmp_path):
+    r = stateshift("convert", str(tmp_path / "nowhere"), str(tmp_path / "out"), "--to", "rocksdb", "--json",
+                   "-o", "secret=hunter2-very-secret")
+    assert r.returncode == CORRUPT, r.stderr
+    doc = json.loads(r.stdout)
+    assert doc["command"] == "convert" and doc["error"]["exit_code"] == CORRUPT and doc["error"]["kind"] == "error"
+    assert "checkpoint directory does not exist" in doc["error"]["message"]
+    assert r.stderr.strip() == f"stateshift: error: {doc['error']['message']}"
+    assert "hunter2" not in r.stdout + r.stderr
