@@ -101,7 +101,6 @@ def prepare_target(dst: Location, overwrite: bool) -> None:
         raise not_empty(dst, existing)
     if existing:
         refuse_foreign_files(dst, existing)
-    if existing:
         for name in existing:
             dst.remove(name, recursive=True)
     dst.makedirs("")

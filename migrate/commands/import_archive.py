@@ -449,7 +449,6 @@ def import_archive(
                 f.update(action="rewrite", change="value schema made nullable for engine 4.x")
         return report
 
-
     def key_of(t: ImportTask) -> str:
         return journal.key(t.data_file.operator, t.data_file.store, t.data_file.partition)
 

@@ -161,7 +161,7 @@ def run(args: argparse.Namespace, ctx: Any) -> int:
     if broken:  # the report is printed; the exit code tells a script what a convert would meet
         op, store, part = broken[0]
         print(f"stateshift: error: {len(broken)} store partition(s) cannot be rebuilt at state version "
-              f"{info['state_version']} (first: operator {op} store {store} partition {part}; see PROBLEM above)",
+              f"{info['state_version']} (first: operator {op} store {store} partition {part}; the report says why)",
               file=sys.stderr)
         return CorruptInput.exit_code
     return 0
