@@ -254,12 +254,16 @@ def add_checkpoint_format_argument(parser: argparse.ArgumentParser) -> None:
 
 def add_jobs_argument(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
-        "--jobs", "-j", type=int, default=workers.default_jobs(),
+        "--jobs", "-j", type=int, default=None,
         help="store partitions in parallel (default: the CPUs this process may use, within a container's CPU quota)",
     )
 
 
-def checked_jobs(jobs: int) -> int:
+def checked_jobs(jobs: int | None) -> int:
+    """``--jobs`` as given, else its default (``workers.default_jobs``, read once, by the command
+    that runs: not by every subcommand's parser at start-up)."""
+    if jobs is None:
+        return workers.default_jobs()
     if jobs < 1:
         raise UsageError("--jobs must be at least 1")
     return jobs

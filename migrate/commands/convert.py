@@ -374,12 +374,12 @@ def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace, ctx: Any) -> int:
     from .render import render_convert
 
-    checked_jobs(args.jobs)
+    jobs = checked_jobs(args.jobs)
     src = ctx.open(args.source, readonly=True)
     dst = ctx.open(args.target, readonly=args.dry_run, extra=args.target_storage_option)
     report = convert(
         src, dst, args.to, dry_run=args.dry_run, overwrite=args.overwrite, resume=args.resume, force=args.force,
-        jobs=args.jobs,
+        jobs=jobs,
         progress=ctx.progress.step, on_plan=ctx.progress.start,
         checkpoint_format_to=getattr(args, "checkpoint_format", None),
         engine_version=args.engine_version,

@@ -393,10 +393,10 @@ def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace, ctx: Any) -> int:
     import sys
 
-    checked_jobs(args.jobs)
+    jobs = checked_jobs(args.jobs)
     src = ctx.open(args.source, readonly=True)
     archive = ctx.open(args.archive, readonly=False, extra=args.target_storage_option)
-    report = export(src, archive, version=args.version, overwrite=args.overwrite, force=args.force, jobs=args.jobs,
+    report = export(src, archive, version=args.version, overwrite=args.overwrite, force=args.force, jobs=jobs,
                     progress=ctx.progress.step, on_plan=ctx.progress.start)
     ctx.progress.close()
     for w in report.warnings:

@@ -540,13 +540,13 @@ def add_parser(sub: Any, common: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace, ctx: Any) -> int:
-    checked_jobs(args.jobs)
+    jobs = checked_jobs(args.jobs)
     archive = ctx.open(args.archive, readonly=True)
     dst = ctx.open(args.target, readonly=args.dry_run, extra=args.target_storage_option)
     report = import_archive(
         archive, dst, args.to, dry_run=args.dry_run, new_query_id=args.new_query_id, overwrite=args.overwrite,
         resume=args.resume,
-        jobs=args.jobs, progress=ctx.progress.step, on_plan=ctx.progress.start,
+        jobs=jobs, progress=ctx.progress.step, on_plan=ctx.progress.start,
         engine_version=args.engine_version,
         checkpoint_format_to=args.checkpoint_format,
     )

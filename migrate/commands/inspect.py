@@ -56,10 +56,10 @@ def describe(ckpt: Checkpoint, rows: bool = False, jobs: int = 1, progress: Call
         ops.append({"operator": op.operator_id, "name": op.name, "stores": stores})
     if to_digest:
         on_plan(len(to_digest))
-    done = digest_partitions([digest_task(ckpt, sp) for _, sp in to_digest], jobs, progress)
-    for (entry, _), result in zip(to_digest, done):
-        entry["rows"] = result.digest.rows
-        entry["digest"] = result.digest.hexdigest
+        done = digest_partitions([digest_task(ckpt, sp) for _, sp in to_digest], jobs, progress)
+        for (entry, _), result in zip(to_digest, done):
+            entry["rows"] = result.digest.rows
+            entry["digest"] = result.digest.hexdigest
     sources = sorted(n for n, e in ckpt.location.list_dir("sources").items() if e.is_dir)
     return {
         "checkpoint": ckpt.location.display,

@@ -86,47 +86,36 @@ class _Task:
     where = "/t/state/0/5"
 
 
-def test_an_os_error_nobody_expected_is_named_with_its_partition():
-    def fails_with_a_file(task):
-        raise OSError(errno.EIO, "Input/output error", "/dev/shm/x/LOG")
-
-    def fails_without_one(task):
-        raise OSError(errno.ENOSPC, "No space left on device")
-
-    with pytest.raises(SystemFailure) as info:
-        run_task(fails_with_a_file, _Task())
-    assert str(info.value) == "/dev/shm/x/LOG: could not use this file while moving /t/state/0/5: the device reported an input/output error (EIO)"
-    with pytest.raises(SystemFailure) as info:
-        run_task(fails_without_one, _Task())
-    assert str(info.value) == "/t/state/0/5: could not move this store partition: no space left on the device (ENOSPC)"
-    assert run_task(lambda task: task.where, _Task()) == "/t/state/0/5"
-
-
 class _ReadTask(_Task):
     from migrate.commands.common import DigestTask
 
     action = DigestTask.action  # verify, inspect --rows, a dry run
 
 
+def _message(error: BaseException, task: _Task) -> str:
+    """The one-line SystemFailure ``run_task`` makes of ``error`` raised in ``task``."""
+    def fails(task):
+        raise error
+
+    with pytest.raises(SystemFailure) as info:
+        run_task(fails, task)
+    return str(info.value)
+
+
+def test_an_os_error_nobody_expected_is_named_with_its_partition():
+    assert _message(OSError(errno.EIO, "Input/output error", "/dev/shm/x/LOG"), _Task()) == \
+        "/dev/shm/x/LOG: could not use this file while moving /t/state/0/5: the device reported an input/output error (EIO)"
+    assert _message(OSError(errno.ENOSPC, "No space left on device"), _Task()) == \
+        "/t/state/0/5: could not move this store partition: no space left on the device (ENOSPC)"
+    assert run_task(lambda task: task.where, _Task()) == "/t/state/0/5"
+
+
 def test_a_read_only_task_says_it_was_reading():
-    def fails_with_a_file(task):
-        raise OSError(errno.EIO, "Input/output error", "/dev/shm/x/LOG")
-
-    def fails_without_one(task):
-        raise OSError(errno.EIO, "Input/output error")
-
-    def exhausts(task):
-        raise MemoryError()
-
-    with pytest.raises(SystemFailure) as info:
-        run_task(fails_with_a_file, _ReadTask())
-    assert str(info.value) == "/dev/shm/x/LOG: could not use this file while reading /t/state/0/5: the device reported an input/output error (EIO)"
-    with pytest.raises(SystemFailure) as info:
-        run_task(fails_without_one, _ReadTask())
-    assert str(info.value) == "/t/state/0/5: could not read this store partition: the device reported an input/output error (EIO)"
-    with pytest.raises(SystemFailure) as info:
-        run_task(exhausts, _ReadTask())
-    assert str(info.value).startswith("/t/state/0/5: ran out of memory reading this store partition")
+    assert _message(OSError(errno.EIO, "Input/output error", "/dev/shm/x/LOG"), _ReadTask()) == \
+        "/dev/shm/x/LOG: could not use this file while reading /t/state/0/5: the device reported an input/output error (EIO)"
+    assert _message(OSError(errno.EIO, "Input/output error"), _ReadTask()) == \
+        "/t/state/0/5: could not read this store partition: the device reported an input/output error (EIO)"
+    assert _message(MemoryError(), _ReadTask()).startswith("/t/state/0/5: ran out of memory reading this store partition")
 
 
 def test_the_scratch_folders_of_dead_workers_are_removed_and_no_others(tmp_path, monkeypatch):
