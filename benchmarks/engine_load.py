@@ -59,7 +59,8 @@ def existing_key(info: dict) -> tuple[str, int, int]:
     ids = np.zeros(1, np.int64)
     version = last_written(ids, born_version(ids, p), died_version(ids, p), p)
     cols = rowgen.key_columns(ids, p.seed).to_pylist()[0]
-    count = rowgen.value_columns(p.shape, ids, version, p.seed).to_pylist()[0]["count"]
+    # by field, not to_pylist(): the wide aggregate names several buffer fields "max"
+    count = rowgen.value_columns(p.shape, ids, version, p.seed).field("count")[0].as_py()
     return cols["sensor"], cols["sensor_id"], count
 
 

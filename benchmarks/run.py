@@ -499,6 +499,8 @@ def main(argv: list[str] | None = None) -> int:
         for parts in [int(x) for x in args.partitions.split(",")]:
             p = Params(args.keys, parts, args.shape, "hdfs", args.deltas, args.seed)
             engine = run_engine(p, scratch) if args.engine else (None, "")
+            if args.engine and engine[0] is None:
+                print(f"{p.keys:,} keys / {parts} partitions: {engine[1]}", file=sys.stderr)
             for case in cases:
                 r = run_case(case, p, args.jobs, scratch, not args.no_floor, tool_path, args.tool_python, args.repeat)
                 if case == "convert-h2r" and engine[0]:

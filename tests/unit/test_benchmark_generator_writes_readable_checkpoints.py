@@ -55,3 +55,28 @@ def test_generated_checkpoint_reads_back_with_the_recorded_digests(tmp_path, lay
         expected = recorded["partitions"][sp.partition]
         assert digest_batches(batches).hexdigest == expected["digest"]
         assert sum(b.num_rows for b in batches) == expected["rows"]
+
+
+@pytest.mark.parametrize("shape", rowgen.SHAPES)
+def test_engine_load_expects_the_count_the_checkpoint_holds_for_key_0(tmp_path, shape):
+    """``benchmarks.engine_load`` checks that the engine continued generated key 0 from the count
+    the generator says it holds; that count must be the one in the files, decoded by the tool's
+    own row decoder from the rows its reader rebuilds (the wide aggregate names several value
+    fields "max", which once broke the lookup)."""
+    from benchmarks.engine_load import existing_key
+    from migrate.rows import decode_rows, parse_state_schema_file
+
+    p = Params(keys=2000, partitions=3, shape=shape, layout="hdfs", deltas=3, seed=17)
+    info = generate(p, tmp_path / "ckpt", jobs=1, quiet=True)
+    sensor, sensor_id, count = existing_key(info)
+    ck = load_checkpoint(open_location(str(tmp_path / "ckpt")))
+    schema_file = next((tmp_path / "ckpt" / "state" / "0").glob("*/_metadata/schema"))
+    schema = parse_state_schema_file(schema_file.read_bytes(), str(schema_file))[0]
+    found = []
+    for sp in ck.store_partitions():
+        for batch in ck.provider.read(sp.dir, ck.state_version, ReadContext(conf=ck.conf, listing=sp.listing)):
+            keys = decode_rows(batch.column("key"), schema.key_schema).to_pylist()
+            values = decode_rows(batch.column("value"), schema.value_schema)
+            counts = values.field(values.type.get_field_index("count")).to_pylist()
+            found += [c for k, c in zip(keys, counts) if list(k.values()) == [sensor, sensor_id]]
+    assert found == [count] and count > 0
