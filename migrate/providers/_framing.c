@@ -27,6 +27,19 @@
  *     reference and the fallback. Raises ValueError when a start does not hold a record within
  *     the data (starts that did not come from record_starts); it never returns a partial result.
  *
+ * gather_files(parts, offset_limit=2**31 - 1) -> (key_offsets, keys, value_offsets, values, removed, large)
+ *     What gather_records gives for each file of a store partition's chain, joined: parts is a
+ *     list of (data, starts) tuples in chain order. Every part is measured first, the five
+ *     buffers are made once for all of them, and each part's records are copied straight into
+ *     them, after the records of the parts before it; the part's list entry is then replaced by
+ *     None, so a file nobody else holds is freed before the next one is copied. One copy of each
+ *     record, where gather_records per file and a join made two (migrate/providers/hdfs.py:
+ *     combine_files, the reference and the fallback). The offsets are int64 (large is True) when
+ *     the keys or the values of all parts together exceed offset_limit bytes (2**31 - 1; tests
+ *     lower it), int32 otherwise. Raises ValueError when a start does not hold a record within
+ *     its data, and when a part's bytes change between the measure and the copy (the copy checks
+ *     every length again, against its input and the room left in the output).
+ *
  * frame_records(key_offsets, keys, key_offset, keys_large, value_offsets, values, value_offset,
  *               values_large, count) -> bytes
  *     The other direction, for the files this tool writes (no removals): the records of count
@@ -318,6 +331,185 @@ done:
     return result;
 }
 
+/* ------------------------------------------------------------------------ gather_files */
+
+/* Copy the records at `count` starts of one file into the joined buffers, from record `first` and
+ * from byte `*kat` / `*vat` of the keys / values on; offsets slot first + i + 1 gets each record's
+ * end (slot `first` holds the end of the previous file already). Every length is read once and
+ * checked against the input that remains and the room left in the output, so a buffer changed
+ * since it was measured can only fail the call: -1, and what was copied is garbage the caller
+ * drops. Needs no GIL. */
+static int
+fill_into(const unsigned char *buf, int64_t n, const unsigned char *starts, int64_t count, int large,
+          char *koff, char *kout, int64_t kcap, char *voff, char *vout, int64_t vcap, char *removed,
+          int64_t first, int64_t *kat_io, int64_t *vat_io)
+{
+    int64_t kat = *kat_io, vat = *vat_io;
+    for (int64_t i = 0; i < count; i++) {
+        int64_t pos = start_at(starts, i);
+        if (pos < 0 || n - pos < 4)
+            return -1;
+        int64_t klen = be_int32(buf + pos);
+        if (klen < 0 || n - pos - 4 < klen + 4)
+            return -1;
+        int64_t vpos = pos + 4 + klen;
+        int64_t vlen = be_int32(buf + vpos);
+        int gone = vlen == -1;
+        if (gone)
+            vlen = 0;                             /* a removal: empty value */
+        else if (vlen < 0 || n - vpos - 4 < vlen)
+            return -1;
+        if (kcap - kat < klen || vcap - vat < vlen)
+            return -1;
+        memcpy(kout + kat, buf + pos + 4, (size_t)klen);
+        kat += klen;
+        if (vlen > 0)
+            memcpy(vout + vat, buf + vpos + 4, (size_t)vlen);
+        vat += vlen;
+        removed[first + i] = (char)gone;
+        int64_t slot = first + i + 1;
+        if (large) {
+            memcpy(koff + 8 * slot, &kat, 8);
+            memcpy(voff + 8 * slot, &vat, 8);
+        }
+        else {
+            int32_t k32 = (int32_t)kat, v32 = (int32_t)vat;  /* <= kcap, vcap <= INT32_MAX when !large */
+            memcpy(koff + 4 * slot, &k32, 4);
+            memcpy(voff + 4 * slot, &v32, 4);
+        }
+    }
+    *kat_io = kat;
+    *vat_io = vat;
+    return 0;
+}
+
+/* The (data, starts) buffers of parts[i], a 2-tuple; -1 with an exception set otherwise. */
+static int
+part_buffers(PyObject *parts, Py_ssize_t i, Py_buffer *view, Py_buffer *sview)
+{
+    PyObject *item = PyList_GET_ITEM(parts, i);
+    if (!PyTuple_Check(item) || PyTuple_GET_SIZE(item) != 2) {
+        PyErr_Format(PyExc_TypeError, "part %zd is not a (data, starts) tuple", i);
+        return -1;
+    }
+    if (PyObject_GetBuffer(PyTuple_GET_ITEM(item, 0), view, PyBUF_SIMPLE) < 0)
+        return -1;
+    if (PyObject_GetBuffer(PyTuple_GET_ITEM(item, 1), sview, PyBUF_SIMPLE) < 0) {
+        PyBuffer_Release(view);
+        return -1;
+    }
+    if (sview->len % (Py_ssize_t)sizeof(int64_t) != 0) {
+        PyBuffer_Release(sview);
+        PyBuffer_Release(view);
+        PyErr_SetString(PyExc_ValueError, "starts must be a buffer of int64");
+        return -1;
+    }
+    return 0;
+}
+
+PyDoc_STRVAR(gather_files_doc,
+"gather_files(parts, offset_limit=2**31 - 1, /) -> (key_offsets, keys, value_offsets, values, removed, large)\n"
+"\n"
+"The records of several decompressed heap-map files, one after the other, as one key array and\n"
+"one value array (offsets and data buffers of Arrow binary arrays) plus one byte per record, 1\n"
+"for a removal. parts: a list of (data, starts) tuples, starts from record_starts for the same\n"
+"data; each entry is replaced by None once its records are copied. The offsets are int64 (large)\n"
+"when the keys or the values of all parts exceed offset_limit bytes, else int32. ValueError when\n"
+"a start does not hold a record within its data.");
+
+static PyObject *
+gather_files(PyObject *module, PyObject *args)
+{
+    PyObject *parts;
+    PyObject *koff = NULL, *kout = NULL, *voff = NULL, *vout = NULL, *removed = NULL, *result = NULL;
+    int64_t *sizes = NULL;                        /* per part: records, key bytes, value bytes */
+    int64_t records = 0, key_bytes = 0, value_bytes = 0;
+    Py_buffer view, sview;
+
+    (void)module;
+    long long offset_limit = INT32_MAX;
+    if (!PyArg_ParseTuple(args, "O!|L:gather_files", &PyList_Type, &parts, &offset_limit))
+        return NULL;
+    if (offset_limit < 0 || offset_limit > INT32_MAX) {
+        PyErr_SetString(PyExc_ValueError, "offset_limit must be in [0, 2**31 - 1]");
+        return NULL;
+    }
+    Py_ssize_t nparts = PyList_GET_SIZE(parts);
+    sizes = PyMem_Calloc((size_t)(nparts ? nparts : 1), 3 * sizeof(int64_t));
+    if (sizes == NULL)
+        return PyErr_NoMemory();
+    for (Py_ssize_t i = 0; i < nparts; i++) {
+        if (part_buffers(parts, i, &view, &sview) < 0)
+            goto done;
+        int64_t count = (int64_t)(sview.len / (Py_ssize_t)sizeof(int64_t)), kb = 0, vb = 0;
+        int outcome;
+        Py_BEGIN_ALLOW_THREADS
+        outcome = measure((const unsigned char *)view.buf, (int64_t)view.len, (const unsigned char *)sview.buf, count, &kb, &vb);
+        Py_END_ALLOW_THREADS
+        PyBuffer_Release(&sview);
+        PyBuffer_Release(&view);
+        if (outcome != 0) {
+            PyErr_SetString(PyExc_ValueError, "a start does not hold a record within the data");
+            goto done;
+        }
+        sizes[3 * i] = count;                     /* each <= its buffer's length: the sums fit int64 */
+        sizes[3 * i + 1] = kb;
+        sizes[3 * i + 2] = vb;
+        records += count;
+        key_bytes += kb;
+        value_bytes += vb;
+    }
+    int large = key_bytes > (int64_t)offset_limit || value_bytes > (int64_t)offset_limit;
+    Py_ssize_t width = large ? 8 : 4;
+    koff = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(records + 1) * width);
+    voff = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(records + 1) * width);
+    kout = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)key_bytes);
+    vout = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)value_bytes);
+    removed = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)records);
+    if (!koff || !voff || !kout || !vout || !removed)
+        goto done;
+    char *ko = PyBytes_AS_STRING(koff), *ki = PyBytes_AS_STRING(kout);
+    char *vo = PyBytes_AS_STRING(voff), *vi = PyBytes_AS_STRING(vout), *rm = PyBytes_AS_STRING(removed);
+    memset(ko, 0, (size_t)width);                 /* offset slot 0 */
+    memset(vo, 0, (size_t)width);
+    int64_t first = 0, kat = 0, vat = 0;
+    for (Py_ssize_t i = 0; i < nparts; i++) {
+        if (part_buffers(parts, i, &view, &sview) < 0)
+            goto done;
+        int64_t count = (int64_t)(sview.len / (Py_ssize_t)sizeof(int64_t));
+        int outcome = -1;
+        if (count == sizes[3 * i] && records - first >= count) {
+            Py_BEGIN_ALLOW_THREADS
+            outcome = fill_into((const unsigned char *)view.buf, (int64_t)view.len, (const unsigned char *)sview.buf,
+                                count, large, ko, ki, key_bytes, vo, vi, value_bytes, rm, first, &kat, &vat);
+            Py_END_ALLOW_THREADS
+        }
+        PyBuffer_Release(&sview);
+        PyBuffer_Release(&view);
+        if (outcome != 0) {
+            PyErr_SetString(PyExc_ValueError, "a part changed while its records were copied");
+            goto done;
+        }
+        first += count;
+        Py_INCREF(Py_None);
+        if (PyList_SetItem(parts, i, Py_None) < 0)  /* steals the reference; frees the part if unheld */
+            goto done;
+    }
+    if (first != records || kat != key_bytes || vat != value_bytes) {
+        PyErr_SetString(PyExc_ValueError, "the parts changed while their records were copied");
+        goto done;
+    }
+    result = Py_BuildValue("(OOOOOO)", koff, kout, voff, vout, removed, large ? Py_True : Py_False);
+done:
+    Py_XDECREF(koff);
+    Py_XDECREF(kout);
+    Py_XDECREF(voff);
+    Py_XDECREF(vout);
+    Py_XDECREF(removed);
+    PyMem_Free(sizes);
+    return result;
+}
+
 /* ------------------------------------------------------------------------ take (replay) */
 
 /* How far ahead take_side asks for memory: the data of the row AHEAD rows on, and the offsets of
@@ -493,6 +685,7 @@ static PyMethodDef framing_methods[] = {
     {"take_binary", take_binary, METH_VARARGS, take_binary_doc},
     {"record_starts", record_starts, METH_VARARGS, record_starts_doc},
     {"gather_records", gather_records, METH_VARARGS, gather_records_doc},
+    {"gather_files", gather_files, METH_VARARGS, gather_files_doc},
     {"frame_records", frame_records, METH_VARARGS, frame_records_doc},
     {NULL, NULL, 0, NULL},
 };

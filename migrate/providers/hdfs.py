@@ -51,6 +51,12 @@ from .base import (
     WrittenFile,
 )
 
+#: the most bytes the keys (or the values) of one array may hold with int32 offsets; the records of
+#: a chain beyond it are joined with int64 offsets (large_binary) and handed on in batches of at
+#: most BATCH_BYTES (tests lower both)
+OFFSET_LIMIT = 2**31 - 1
+BATCH_BYTES = 64 << 20
+
 try:  # the compiled record walk and gather (setup.py builds them when a C compiler is there)
     from . import _framing
 except ImportError:  # not built: the Python walk and gather
@@ -267,13 +273,37 @@ def combine_files(files: list[tuple[pa.Array, pa.Array, np.ndarray]]) -> list:
     280-296 MB (export) and 291-292 -> 265-280 MB (convert to RocksDB), CPU within the noise."""
     if not files:
         return [pa.array([], pa.binary()), pa.array([], pa.binary()), np.zeros(0, dtype=bool)]
-    key_type = pa.large_binary() if any(pa.types.is_large_binary(f[0].type) for f in files) else pa.binary()
+    total = max(sum(_data_bytes(f[0]) for f in files), sum(_data_bytes(f[1]) for f in files))
+    large = total > OFFSET_LIMIT or any(pa.types.is_large_binary(f[0].type) for f in files)
+    key_type = pa.large_binary() if large else pa.binary()
     per_file_keys = [f[0] for f in files]
     per_file_values = [f[1] for f in files]
     removed = np.concatenate([f[2] for f in files])
     files.clear()
     keys, values = _join(per_file_keys, key_type), _join(per_file_values, key_type)
     return [keys, values, removed]
+
+
+def _data_bytes(arr: pa.Array) -> int:
+    """The bytes of a binary array's elements (its offsets' span: the array may be a slice)."""
+    offs, _ = _offsets(arr)
+    return int(offs[-1] - offs[0])
+
+
+def gather_files(parts: list[tuple[bytes | bytearray, np.ndarray]]) -> list:
+    """What :func:`combine_files` returns, straight from the decompressed files: ``parts`` holds
+    each file's bytes and :func:`record_starts`, in chain order, and is emptied file by file as
+    the compiled ``_framing.gather_files`` copies the records into buffers sized for all of them
+    (int64 offsets only when the keys or the values of all files reach 2 GiB). Each record is
+    copied once where :func:`record_arrays` per file and the join copied it twice, and a file's
+    bytes go as soon as its records are out, so the peak holds the files' bytes and one copy of
+    the records, not the records twice."""
+    koff, kdata, voff, vdata, removed, large = _framing.gather_files(parts, OFFSET_LIMIT)
+    binary = pa.large_binary() if large else pa.binary()
+    n = len(removed)
+    keys = pa.Array.from_buffers(binary, n, [None, pa.py_buffer(koff), pa.py_buffer(kdata)])
+    values = pa.Array.from_buffers(binary, n, [None, pa.py_buffer(voff), pa.py_buffer(vdata)])
+    return [keys, values, np.frombuffer(removed, dtype=np.bool_)]
 
 
 def _join(arrays: list[pa.Array], binary: pa.DataType) -> pa.Array:
@@ -318,6 +348,26 @@ def _replay(
         return keys, values  # every record survives, and the files hold them in the order asked for
     keys = take(keys, survivors)
     return keys, take(values, survivors)
+
+
+def batch_bounds(keys: pa.Array, values: pa.Array) -> Iterator[tuple[int, int]]:
+    """[start, end) row ranges of the batches a read hands on: BATCH_ROWS rows each, and for
+    arrays with int64 offsets (a chain of more than 2 GiB) also at most BATCH_BYTES of keys and of
+    values (or one row), so each batch can be cast to ``binary``, whose offsets are int32 (a
+    record's key and value each hold less than 2 GiB: their lengths are int32 in the file)."""
+    n = len(keys)
+    if not pa.types.is_large_binary(keys.type) and not pa.types.is_large_binary(values.type):
+        yield from ((i, min(i + BATCH_ROWS, n)) for i in range(0, n, BATCH_ROWS))
+        return
+    (ko, _), (vo, _) = _offsets(keys), _offsets(values)
+    i = 0
+    while i < n:
+        j = min(i + BATCH_ROWS, n)
+        if ko[j] - ko[i] > BATCH_BYTES or vo[j] - vo[i] > BATCH_BYTES:
+            fits = min(np.searchsorted(ko, ko[i] + BATCH_BYTES, "right"), np.searchsorted(vo, vo[i] + BATCH_BYTES, "right"))
+            j = max(i + 1, min(j, int(fits) - 1))
+        yield i, j
+        i = j
 
 
 def take(arr: pa.Array, positions: np.ndarray) -> pa.Array:
@@ -482,14 +532,23 @@ class HDFSProvider(Provider):
             return
         listing = self._listing(store, ctx)
         names = self.chain(store, version, listing)
-        files = []
-        for name in names:  # each decompressed file is held only until its records are copied out
-            data = self.read_file(store, name, ctx.codec, listing)
-            files.append(record_arrays(data, store.describe(name), allow_removals=name.endswith(".delta")))
-            del data
-        keys, values = replay(combine_files(files), ctx.key_order)  # both empty what they are given
-        for i in range(0, len(keys), BATCH_ROWS):
-            k, v = keys.slice(i, BATCH_ROWS), values.slice(i, BATCH_ROWS)
+        if _framing is not None:  # every file walked, then all records copied once into one array each
+            parts = []
+            for name in names:
+                data = self.read_file(store, name, ctx.codec, listing)
+                parts.append((data, record_starts(data, store.describe(name), allow_removals=name.endswith(".delta"))))
+                del data
+            combined = gather_files(parts)
+        else:  # each decompressed file is held only until its records are copied out
+            files = []
+            for name in names:
+                data = self.read_file(store, name, ctx.codec, listing)
+                files.append(record_arrays(data, store.describe(name), allow_removals=name.endswith(".delta")))
+                del data
+            combined = combine_files(files)
+        keys, values = replay(combined, ctx.key_order)  # replay and both joins empty what they are given
+        for i, j in batch_bounds(keys, values):
+            k, v = keys.slice(i, j - i), values.slice(i, j - i)
             if k.type != pa.binary():
                 k, v = k.cast(pa.binary()), v.cast(pa.binary())
             yield pa.RecordBatch.from_arrays([k, v], schema=ROW_SCHEMA)
