@@ -169,7 +169,7 @@ def no_blas_pool(environ: MutableMapping[str, str] = os.environ) -> None:
 #: any: requests below MMAP come from the heap, and the heap keeps up to TRIM of free memory at its
 #: top instead of handing it back to the kernel
 MALLOC_MMAP_THRESHOLD = 32 << 20
-MALLOC_TRIM_THRESHOLD = 64 << 20
+MALLOC_TRIM_THRESHOLD = 1 << 30
 _MALLOC_VARIABLES = ("MALLOC_MMAP_THRESHOLD_", "MALLOC_TRIM_THRESHOLD_")
 
 
@@ -190,7 +190,16 @@ def keep_freed_memory(environ: MutableMapping[str, str] = os.environ, this_proce
     221 -> 242 / 238); the largest process unchanged, 108-114 MB
     (``benchmarks/results/2026-12-04-ab-malloc3-base.md`` against ``...-env.md``). Thresholds of
     16 / 32 MB changed nothing; the trim threshold alone (which fixes the other at 128 KiB) tripled
-    the faults."""
+    the faults.
+
+    The trim threshold was 64 MiB, enough for those rows (about 40 bytes of value) but not for
+    rows of 150 (the benchmark's wide shape), whose partitions free more than that at once: at 64
+    MiB a 10M convert of wide rows took 0.82M-1.78M page faults, at 1 GiB 0.07M; CPU s 18.1 /
+    18.4 -> 14.3 / 14.4 (heap map -> RocksDB), 16.2 / 16.5 -> 11.7 / 11.8 (RocksDB -> heap map),
+    narrow rows unchanged (``benchmarks/results/2026-12-05-ab-trim-threshold.md``). Keeping freed
+    memory does not raise a process's peak (what is kept was in use at the peak); a worker's
+    resident memory stays near its peak between partitions instead of falling, so the tree's sum
+    comes nearer the sum of its processes' peaks."""
     if any(name in environ for name in _MALLOC_VARIABLES) or "glibc.malloc." in environ.get("GLIBC_TUNABLES", ""):
         return False
     environ["MALLOC_MMAP_THRESHOLD_"] = str(MALLOC_MMAP_THRESHOLD)
