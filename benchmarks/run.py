@@ -247,6 +247,21 @@ def median_run(runs: list[measure.Measured]) -> measure.Measured:
     return sorted(runs, key=lambda m: m.wall_s)[(len(runs) - 1) // 2]
 
 
+def _archive_for_import(scratch: Path, p: Params) -> Path:
+    """Where the export case leaves its archive for the import case of the same checkpoint."""
+    return scratch / f"archive-for-import-{p.name}"
+
+
+def reported_digests(report: dict[str, Any]) -> dict[int, str]:
+    """Partition -> state digest from a command's ``--json`` report: the source's for a convert,
+    the written target's for an import (each checked against the archive), and each data file's
+    for an export. Every case's digests are held to the generator's."""
+    if report.get("command") == "export":
+        return {f["partition"]: f["state_digest"]["hash"] for f in report.get("data_files", [])}
+    field = "target_digest" if report.get("command") == "import" else "source_digest"
+    return {q["partition"]: q[field] for q in report.get("partitions", [])}
+
+
 def run_case(
     case: str, p: Params, jobs: int, scratch: Path, with_floor: bool, tool_path: str | None = None,
     tool_python: str | None = None, repeat: int = 1,
@@ -270,7 +285,7 @@ def run_case(
         sources = source_files(src)
     elif case == "import":
         src, info = ensure_checkpoint(hdfs, jobs)
-        archive = scratch / "archive-for-import"
+        archive = _archive_for_import(scratch, hdfs)
         if not (archive / "manifest.json").exists():
             shutil.rmtree(archive, ignore_errors=True)
             _tool(["export", str(src), str(archive)], jobs, tool_path, tool_python)
@@ -288,10 +303,10 @@ def run_case(
         rows = int(report.get("rows", 0))
         if rows != info["rows"]:
             raise SystemExit(f"{case}: the tool reports {rows} rows, the generator wrote {info['rows']}")
-        got = {q["partition"]: q["source_digest"] for q in report.get("partitions", []) if "source_digest" in q}
-        wrong = sorted(k for k, d in got.items() if expected.get(k) != d)
+        got = reported_digests(report)
+        wrong = sorted(k for k in set(got) | set(expected) if expected.get(k) != got.get(k))
         if wrong:
-            raise SystemExit(f"{case}: partition {wrong[0]} digest {got[wrong[0]]} differs from the generator's {expected.get(wrong[0])}")
+            raise SystemExit(f"{case}: partition {wrong[0]} digest {got.get(wrong[0])} differs from the generator's {expected.get(wrong[0])}")
         tool_runs.append(m)
         written = written_sizes(target)
         if with_floor:
@@ -326,7 +341,7 @@ def run_case(
         tool=m, floor=floor, largest_partition_raw=int(info["largest_partition_raw_bytes"]), jobs=jobs, steps=steps,
         codec_steps=codec, tool_walls=[r.wall_s for r in tool_runs], floor_walls=[r.wall_s for r in floor_runs],
     )
-    archive = scratch / "archive-for-import"
+    archive = _archive_for_import(scratch, Params(p.keys, p.partitions, p.shape, "hdfs", p.deltas, p.seed))
     if case == "export" and not archive.exists():
         target.rename(archive)  # the import case reads this archive instead of exporting again
     shutil.rmtree(target, ignore_errors=True)

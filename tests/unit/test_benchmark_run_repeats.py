@@ -19,8 +19,13 @@ def _m(wall: float, stdout: str = "") -> measure.Measured:
     return measure.Measured(("x",), 0, wall, wall, 100.0, 200.0, 150.0, 0.0, 150.0, 1.0, 1.0, stdout, "")
 
 
-def _report(digests=("aa", "bb")) -> str:
-    return json.dumps({"rows": 10, "partitions": [{"partition": i, "source_digest": d} for i, d in enumerate(digests)]})
+def _report(digests=("aa", "bb"), command="convert") -> str:
+    """A ``--json`` report of the command, with its per-partition digests where it puts them."""
+    if command == "export":
+        files = [{"partition": i, "state_digest": {"rows": 5, "hash": d}} for i, d in enumerate(digests)]
+        return json.dumps({"command": "export", "rows": 10, "data_files": files})
+    field = "target_digest" if command == "import" else "source_digest"
+    return json.dumps({"command": command, "rows": 10, "partitions": [{"partition": i, field: d} for i, d in enumerate(digests)]})
 
 
 @pytest.fixture
@@ -28,7 +33,7 @@ def staged(monkeypatch, tmp_path):
     calls: list[str] = []
     tool_walls = iter([5.0, 3.0, 4.0])
     floor_walls = iter([1.0, 2.0, 0.5])
-    reports = iter([_report(), _report(), _report()])
+    reports = iter([_report(command="export")] * 3)
     monkeypatch.setattr(run, "ensure_checkpoint", lambda p, jobs: (tmp_path / "src", INFO))
     monkeypatch.setattr(run, "source_files", lambda src: {0: [("f", 1)]})
     monkeypatch.setattr(run, "written_sizes", lambda target: {0: [1]})
@@ -72,7 +77,7 @@ def _details(r):
 
 def test_a_wrong_digest_in_any_run_stops_the_case(staged, monkeypatch):
     calls, tmp_path = staged
-    reports = iter([_report(), _report(("aa", "zz"))])
+    reports = iter([_report(command="export"), _report(("aa", "zz"), command="export")])
     walls = iter([1.0, 1.0])
     monkeypatch.setattr(run, "_tool", lambda *a, **k: (calls.append("tool"), _m(next(walls), next(reports)))[1])
     with pytest.raises(SystemExit, match="partition 1 digest zz"):
@@ -88,3 +93,28 @@ def test_repeat_below_one_is_refused(capsys):
     with pytest.raises(SystemExit):
         run.main(["--repeat", "0", "--cases", "export"])
     assert "--repeat must be at least 1" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("command", ["convert", "export", "import"])
+def test_every_commands_digests_are_held_to_the_generators(staged, monkeypatch, command):
+    """Each command reports its digests in its own field; a wrong one, or a missing partition,
+    stops the case (the check once read only a convert's field and passed the others unread)."""
+    calls, tmp_path = staged
+    archive = tmp_path / "archive-for-import-narrow-10-p2-hdfs"
+    (archive / "manifest.json").parent.mkdir(parents=True)
+    (archive / "manifest.json").write_text("{}")
+    monkeypatch.setattr(run, "archive_files", lambda a: {0: [("f", 1)]})
+    case = {"convert": "convert-h2r", "export": "export", "import": "import"}[command]
+    p = Params(10, 2, "narrow", "hdfs", 1, 1)
+    monkeypatch.setattr(run, "run_rocksdb_steps", lambda *a: {"scan_cpu_s": 0.0})
+    for digests, message in ((("aa", "zz"), "partition 1 digest zz"), (("aa",), "partition 1 digest None")):
+        monkeypatch.setattr(run, "_tool", lambda *a, d=digests, **k: _m(1.0, _report(d, command)))
+        with pytest.raises(SystemExit, match=message):
+            run.run_case(case, p, 2, tmp_path, False, repeat=1)
+    monkeypatch.setattr(run, "_tool", lambda *a, **k: _m(1.0, _report(command=command)))
+    assert run.run_case(case, p, 2, tmp_path, False, repeat=1).rows == 10
+
+
+def test_the_import_case_reads_the_archive_of_its_own_partition_count(tmp_path):
+    names = {run._archive_for_import(tmp_path, Params(10, n, "narrow", "hdfs", 1, 1)) for n in (16, 64, 256)}
+    assert len(names) == 3
