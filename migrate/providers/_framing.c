@@ -383,10 +383,15 @@ fill_into(const unsigned char *buf, int64_t n, const unsigned char *starts, int6
     return 0;
 }
 
-/* The (data, starts) buffers of parts[i], a 2-tuple; -1 with an exception set otherwise. */
+/* The (data, starts) buffers of parts[i], a 2-tuple; -1 with an exception set otherwise (also
+ * when the list no longer has an entry i: allocating can run a finaliser, which could shrink it). */
 static int
 part_buffers(PyObject *parts, Py_ssize_t i, Py_buffer *view, Py_buffer *sview)
 {
+    if (i >= PyList_GET_SIZE(parts)) {
+        PyErr_SetString(PyExc_ValueError, "the list of parts changed while its records were copied");
+        return -1;
+    }
     PyObject *item = PyList_GET_ITEM(parts, i);
     if (!PyTuple_Check(item) || PyTuple_GET_SIZE(item) != 2) {
         PyErr_Format(PyExc_TypeError, "part %zd is not a (data, starts) tuple", i);
