@@ -193,10 +193,10 @@ def keep_freed_memory(environ: MutableMapping[str, str] = os.environ, this_proce
     the faults.
 
     The trim threshold was 64 MiB, enough for those rows (about 40 bytes of value) but not for
-    rows of 150 (the benchmark's wide shape), whose partitions free more than that at once: at 64
-    MiB a 10M convert of wide rows took 0.82M-1.78M page faults, at 1 GiB 0.07M; CPU s 18.1 /
-    18.4 -> 14.3 / 14.4 (heap map -> RocksDB), 16.2 / 16.5 -> 11.7 / 11.8 (RocksDB -> heap map),
-    narrow rows unchanged (``benchmarks/results/2026-12-05-ab-trim-threshold.md``). Keeping freed
+    values of about 150 bytes (the benchmark's wide shape), whose partitions free more than that
+    at once: at 64 MiB a 10M convert of wide rows took 0.82M-1.78M page faults, at 1 GiB 0.07M;
+    CPU s 18.2 / 19.0 -> 14.7 / 14.9 (heap map -> RocksDB), 17.1 / 17.2 -> 12.1 / 12.0 (RocksDB
+    -> heap map), narrow rows unchanged (``benchmarks/results/2026-12-05-ab-trim-threshold.md``). Keeping freed
     memory does not raise a process's peak (what is kept was in use at the peak); a worker's
     resident memory stays near its peak between partitions instead of falling, so the tree's sum
     comes nearer the sum of its processes' peaks."""
