@@ -227,112 +227,6 @@ measure(const unsigned char *buf, int64_t n, const unsigned char *starts, int64_
     return 0;
 }
 
-/* Fill the buffers sized by measure() (which accepted these starts). Needs no GIL. */
-static void
-fill(const unsigned char *buf, const unsigned char *starts, int64_t count, int large,
-     char *koff, char *kout, char *voff, char *vout, char *removed)
-{
-    int64_t kat = 0, vat = 0;
-    for (int64_t i = 0; i <= count; i++) {
-        if (large) {
-            memcpy(koff + 8 * i, &kat, 8);
-            memcpy(voff + 8 * i, &vat, 8);
-        }
-        else {
-            int32_t k32 = (int32_t)kat, v32 = (int32_t)vat;  /* < 2**31: checked by the caller */
-            memcpy(koff + 4 * i, &k32, 4);
-            memcpy(voff + 4 * i, &v32, 4);
-        }
-        if (i == count)
-            break;
-        int64_t pos = start_at(starts, i);
-        int64_t klen = be_int32(buf + pos);
-        int64_t vpos = pos + 4 + klen;
-        int64_t vlen = be_int32(buf + vpos);
-        memcpy(kout + kat, buf + pos + 4, (size_t)klen);
-        kat += klen;
-        removed[i] = vlen == -1;
-        if (vlen > 0) {
-            memcpy(vout + vat, buf + vpos + 4, (size_t)vlen);
-            vat += vlen;
-        }
-    }
-}
-
-PyDoc_STRVAR(gather_records_doc,
-"gather_records(data, starts, large, /) -> (key_offsets, keys, value_offsets, values, removed)\n"
-"\n"
-"The keys and the values at the record starts (from record_starts) of one decompressed heap-map\n"
-"file, each as the offsets (int32, or int64 when large) and data buffers of an Arrow binary\n"
-"array, plus one byte per record, 1 for a removal (its value is empty).");
-
-static PyObject *
-gather_records(PyObject *module, PyObject *args)
-{
-    PyObject *data, *starts_obj;
-    int large;
-    Py_buffer view, sview;
-    int64_t key_bytes = 0, value_bytes = 0;
-    int outcome;
-    PyObject *koff = NULL, *kout = NULL, *voff = NULL, *vout = NULL, *removed = NULL, *result = NULL;
-
-    (void)module;
-    if (!PyArg_ParseTuple(args, "OOp:gather_records", &data, &starts_obj, &large))
-        return NULL;
-    if (PyObject_GetBuffer(data, &view, PyBUF_SIMPLE) < 0)
-        return NULL;
-    if (PyObject_GetBuffer(starts_obj, &sview, PyBUF_SIMPLE) < 0) {
-        PyBuffer_Release(&view);
-        return NULL;
-    }
-    if (sview.len % (Py_ssize_t)sizeof(int64_t) != 0) {
-        PyErr_SetString(PyExc_ValueError, "starts must be a buffer of int64");
-        goto done;
-    }
-    int64_t count = (int64_t)(sview.len / (Py_ssize_t)sizeof(int64_t));
-    const unsigned char *buf = (const unsigned char *)view.buf;
-    const unsigned char *starts = (const unsigned char *)sview.buf;  /* contiguous (PyBUF_SIMPLE) */
-    Py_BEGIN_ALLOW_THREADS
-    outcome = measure(buf, (int64_t)view.len, starts, count, &key_bytes, &value_bytes);
-    Py_END_ALLOW_THREADS
-    if (outcome != 0) {
-        PyErr_SetString(PyExc_ValueError, "a start does not hold a record within the data");
-        goto done;
-    }
-    if (!large && (key_bytes > INT32_MAX || value_bytes > INT32_MAX)) {
-        PyErr_SetString(PyExc_ValueError, "the keys or values need 64-bit offsets (large)");
-        goto done;
-    }
-    Py_ssize_t width = large ? 8 : 4;
-    /* count + 1 <= view.len / 8 + 1, so the offset sizes fit in Py_ssize_t */
-    koff = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(count + 1) * width);
-    voff = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(count + 1) * width);
-    kout = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)key_bytes);
-    vout = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)value_bytes);
-    removed = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)count);
-    if (!koff || !voff || !kout || !vout || !removed)
-        goto done;
-    {
-        char *ko = PyBytes_AS_STRING(koff), *ki = PyBytes_AS_STRING(kout);
-        char *vo = PyBytes_AS_STRING(voff), *vi = PyBytes_AS_STRING(vout), *rm = PyBytes_AS_STRING(removed);
-        Py_BEGIN_ALLOW_THREADS
-        fill(buf, starts, count, large, ko, ki, vo, vi, rm);
-        Py_END_ALLOW_THREADS
-    }
-    result = PyTuple_Pack(5, koff, kout, voff, vout, removed);
-done:
-    Py_XDECREF(koff);
-    Py_XDECREF(kout);
-    Py_XDECREF(voff);
-    Py_XDECREF(vout);
-    Py_XDECREF(removed);
-    PyBuffer_Release(&sview);
-    PyBuffer_Release(&view);
-    return result;
-}
-
-/* ------------------------------------------------------------------------ gather_files */
-
 /* Copy the records at `count` starts of one file into the joined buffers, from record `first` and
  * from byte `*kat` / `*vat` of the keys / values on; offsets slot first + i + 1 gets each record's
  * end (slot `first` holds the end of the previous file already). Every length is read once and
@@ -383,6 +277,118 @@ fill_into(const unsigned char *buf, int64_t n, const unsigned char *starts, int6
     return 0;
 }
 
+/* The five buffers of a gather (gather_records, gather_files): key and value offsets (`width`
+ * bytes each, slot 0 zeroed), key and value data, one removal byte per record. */
+typedef struct {
+    PyObject *koff, *kout, *voff, *vout, *removed;
+} gathered_t;
+
+/* 0, or -1 with MemoryError set (what was made is released by gathered_clear). */
+static int
+gathered_new(gathered_t *g, int64_t records, int64_t key_bytes, int64_t value_bytes, Py_ssize_t width)
+{
+    g->koff = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(records + 1) * width);
+    g->voff = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(records + 1) * width);
+    g->kout = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)key_bytes);
+    g->vout = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)value_bytes);
+    g->removed = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)records);
+    if (!g->koff || !g->voff || !g->kout || !g->vout || !g->removed)
+        return -1;
+    memset(PyBytes_AS_STRING(g->koff), 0, (size_t)width);
+    memset(PyBytes_AS_STRING(g->voff), 0, (size_t)width);
+    return 0;
+}
+
+/* Copy `count` records at `starts` into g from record `first` and byte *kat / *vat on (fill_into,
+ * without the GIL); *kat and *vat advance. */
+static int
+gathered_fill(gathered_t *g, const Py_buffer *view, const Py_buffer *sview, int64_t count, int large,
+              int64_t first, int64_t *kat, int64_t *vat)
+{
+    int outcome;
+    char *ko = PyBytes_AS_STRING(g->koff), *ki = PyBytes_AS_STRING(g->kout);
+    char *vo = PyBytes_AS_STRING(g->voff), *vi = PyBytes_AS_STRING(g->vout), *rm = PyBytes_AS_STRING(g->removed);
+    int64_t kcap = (int64_t)PyBytes_GET_SIZE(g->kout), vcap = (int64_t)PyBytes_GET_SIZE(g->vout);
+    Py_BEGIN_ALLOW_THREADS
+    outcome = fill_into((const unsigned char *)view->buf, (int64_t)view->len, (const unsigned char *)sview->buf,
+                        count, large, ko, ki, kcap, vo, vi, vcap, rm, first, kat, vat);
+    Py_END_ALLOW_THREADS
+    return outcome;
+}
+
+static void
+gathered_clear(gathered_t *g)
+{
+    Py_CLEAR(g->koff);
+    Py_CLEAR(g->kout);
+    Py_CLEAR(g->voff);
+    Py_CLEAR(g->vout);
+    Py_CLEAR(g->removed);
+}
+
+PyDoc_STRVAR(gather_records_doc,
+"gather_records(data, starts, large, /) -> (key_offsets, keys, value_offsets, values, removed)\n"
+"\n"
+"The keys and the values at the record starts (from record_starts) of one decompressed heap-map\n"
+"file, each as the offsets (int32, or int64 when large) and data buffers of an Arrow binary\n"
+"array, plus one byte per record, 1 for a removal (its value is empty).");
+
+static PyObject *
+gather_records(PyObject *module, PyObject *args)
+{
+    PyObject *data, *starts_obj;
+    int large;
+    Py_buffer view, sview;
+    int64_t key_bytes = 0, value_bytes = 0;
+    int outcome;
+    gathered_t g = {NULL, NULL, NULL, NULL, NULL};
+    PyObject *result = NULL;
+
+    (void)module;
+    if (!PyArg_ParseTuple(args, "OOp:gather_records", &data, &starts_obj, &large))
+        return NULL;
+    if (PyObject_GetBuffer(data, &view, PyBUF_SIMPLE) < 0)
+        return NULL;
+    if (PyObject_GetBuffer(starts_obj, &sview, PyBUF_SIMPLE) < 0) {
+        PyBuffer_Release(&view);
+        return NULL;
+    }
+    if (sview.len % (Py_ssize_t)sizeof(int64_t) != 0) {
+        PyErr_SetString(PyExc_ValueError, "starts must be a buffer of int64");
+        goto done;
+    }
+    int64_t count = (int64_t)(sview.len / (Py_ssize_t)sizeof(int64_t));
+    const unsigned char *buf = (const unsigned char *)view.buf;
+    const unsigned char *starts = (const unsigned char *)sview.buf;  /* contiguous (PyBUF_SIMPLE) */
+    Py_BEGIN_ALLOW_THREADS
+    outcome = measure(buf, (int64_t)view.len, starts, count, &key_bytes, &value_bytes);
+    Py_END_ALLOW_THREADS
+    if (outcome != 0) {
+        PyErr_SetString(PyExc_ValueError, "a start does not hold a record within the data");
+        goto done;
+    }
+    if (!large && (key_bytes > INT32_MAX || value_bytes > INT32_MAX)) {
+        PyErr_SetString(PyExc_ValueError, "the keys or values need 64-bit offsets (large)");
+        goto done;
+    }
+    /* count + 1 <= view.len / 8 + 1, so the offset sizes fit in Py_ssize_t */
+    int64_t kat = 0, vat = 0;
+    if (gathered_new(&g, count, key_bytes, value_bytes, large ? 8 : 4) < 0)
+        goto done;
+    if (gathered_fill(&g, &view, &sview, count, large, 0, &kat, &vat) != 0 || kat != key_bytes || vat != value_bytes) {
+        PyErr_SetString(PyExc_ValueError, "the data changed while its records were copied");
+        goto done;
+    }
+    result = PyTuple_Pack(5, g.koff, g.kout, g.voff, g.vout, g.removed);
+done:
+    gathered_clear(&g);
+    PyBuffer_Release(&sview);
+    PyBuffer_Release(&view);
+    return result;
+}
+
+/* ------------------------------------------------------------------------ gather_files */
+
 /* The (data, starts) buffers of parts[i], a 2-tuple; -1 with an exception set otherwise (also
  * when the list no longer has an entry i: allocating can run a finaliser, which could shrink it). */
 static int
@@ -426,7 +432,8 @@ static PyObject *
 gather_files(PyObject *module, PyObject *args)
 {
     PyObject *parts;
-    PyObject *koff = NULL, *kout = NULL, *voff = NULL, *vout = NULL, *removed = NULL, *result = NULL;
+    gathered_t g = {NULL, NULL, NULL, NULL, NULL};
+    PyObject *result = NULL;
     int64_t *sizes = NULL;                        /* per part: records, key bytes, value bytes */
     int64_t records = 0, key_bytes = 0, value_bytes = 0;
     Py_buffer view, sview;
@@ -465,30 +472,16 @@ gather_files(PyObject *module, PyObject *args)
         value_bytes += vb;
     }
     int large = key_bytes > (int64_t)offset_limit || value_bytes > (int64_t)offset_limit;
-    Py_ssize_t width = large ? 8 : 4;
-    koff = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(records + 1) * width);
-    voff = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)(records + 1) * width);
-    kout = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)key_bytes);
-    vout = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)value_bytes);
-    removed = PyBytes_FromStringAndSize(NULL, (Py_ssize_t)records);
-    if (!koff || !voff || !kout || !vout || !removed)
+    if (gathered_new(&g, records, key_bytes, value_bytes, large ? 8 : 4) < 0)
         goto done;
-    char *ko = PyBytes_AS_STRING(koff), *ki = PyBytes_AS_STRING(kout);
-    char *vo = PyBytes_AS_STRING(voff), *vi = PyBytes_AS_STRING(vout), *rm = PyBytes_AS_STRING(removed);
-    memset(ko, 0, (size_t)width);                 /* offset slot 0 */
-    memset(vo, 0, (size_t)width);
     int64_t first = 0, kat = 0, vat = 0;
     for (Py_ssize_t i = 0; i < nparts; i++) {
         if (part_buffers(parts, i, &view, &sview) < 0)
             goto done;
         int64_t count = (int64_t)(sview.len / (Py_ssize_t)sizeof(int64_t));
         int outcome = -1;
-        if (count == sizes[3 * i] && records - first >= count) {
-            Py_BEGIN_ALLOW_THREADS
-            outcome = fill_into((const unsigned char *)view.buf, (int64_t)view.len, (const unsigned char *)sview.buf,
-                                count, large, ko, ki, key_bytes, vo, vi, value_bytes, rm, first, &kat, &vat);
-            Py_END_ALLOW_THREADS
-        }
+        if (count == sizes[3 * i] && records - first >= count)
+            outcome = gathered_fill(&g, &view, &sview, count, large, first, &kat, &vat);
         PyBuffer_Release(&sview);
         PyBuffer_Release(&view);
         if (outcome != 0) {
@@ -504,13 +497,9 @@ gather_files(PyObject *module, PyObject *args)
         PyErr_SetString(PyExc_ValueError, "the parts changed while their records were copied");
         goto done;
     }
-    result = Py_BuildValue("(OOOOOO)", koff, kout, voff, vout, removed, large ? Py_True : Py_False);
+    result = Py_BuildValue("(OOOOOO)", g.koff, g.kout, g.voff, g.vout, g.removed, large ? Py_True : Py_False);
 done:
-    Py_XDECREF(koff);
-    Py_XDECREF(kout);
-    Py_XDECREF(voff);
-    Py_XDECREF(vout);
-    Py_XDECREF(removed);
+    gathered_clear(&g);
     PyMem_Free(sizes);
     return result;
 }
